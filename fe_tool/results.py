@@ -1,0 +1,179 @@
+"""The result of a free-energy calculation: numbers, diagnostics, cost, and its summary text."""
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+from typing import Any
+
+import numpy as np
+
+from .estimators.record import Estimate
+
+CAUTION = (
+    "Caution: simulated free energies depend on the energy model and on sampling; "
+    "they need experimental validation before they inform design or safety decisions."
+)
+
+
+def _jsonable(value: Any) -> Any:
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return [_jsonable(v) for v in value.tolist()]
+    if isinstance(value, (np.floating, float)):
+        v = float(value)
+        return v if math.isfinite(v) else str(v)
+    if isinstance(value, (np.integer,)):
+        return int(value)
+    if isinstance(value, (np.bool_,)):
+        return bool(value)
+    if isinstance(value, Estimate):
+        return _jsonable(value.to_dict())
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):
+        return _jsonable(dataclasses.asdict(value))
+    return value
+
+
+@dataclasses.dataclass
+class Result:
+    """ΔF = F_B − F_A with its uncertainty and everything needed to judge it.
+
+    Attributes:
+        delta_f, stderr: headline estimate and one standard error, in ``units``.
+        estimator: name of the estimator behind the headline; ``choice_reason`` says why.
+        estimates: every estimator's :class:`Estimate`, in ``units``.
+        work_forward, work_reverse: reduced works (kT units) of the A→B and B→A trajectories,
+            non-finite values (diverged trajectories) kept in place.
+        energy_evaluations: every energy-and-gradient evaluation spent (end-state sampling,
+            pilot, training and switching).
+        cost: the same broken down by stage.
+        kT, units: thermal energy and the name of the energy unit of ``delta_f``.
+        diagnostics: sampler and switching diagnostics (JSON-able).
+        warnings: plain sentences; empty when nothing looked wrong.
+        flagged: True when a diagnostic makes the headline number untrustworthy.
+        settings: the resolved options of the run.
+        timings: wall-clock seconds per stage.
+        reference: optional known answer {delta_f, source, tolerance} in ``units``.
+        extras: route-specific data (training history, dissipation along λ, windows ...).
+    """
+
+    delta_f: float
+    stderr: float
+    estimator: str
+    choice_reason: str
+    estimates: dict[str, Estimate]
+    work_forward: np.ndarray
+    work_reverse: np.ndarray
+    energy_evaluations: int
+    cost: dict[str, int]
+    kT: float
+    units: str
+    diagnostics: dict[str, Any]
+    warnings: list[str]
+    flagged: bool
+    settings: dict[str, Any]
+    timings: dict[str, float]
+    reference: dict[str, Any] | None = None
+    extras: dict[str, Any] = dataclasses.field(default_factory=dict)
+
+    # ------------------------------------------------------------------ conversions
+    def in_kT(self) -> tuple[float, float]:
+        """(ΔF, stderr) in units of kT."""
+        return self.delta_f / self.kT, self.stderr / self.kT
+
+    def converted(self, units: str, factor: float) -> "Result":
+        """The same result with energies multiplied by ``factor`` and labelled ``units``."""
+        ref = None
+        if self.reference is not None:
+            ref = {**self.reference, "delta_f": self.reference["delta_f"] * factor,
+                   "tolerance": self.reference.get("tolerance", float("nan")) * factor}
+        return dataclasses.replace(
+            self, delta_f=self.delta_f * factor, stderr=self.stderr * factor, kT=self.kT * factor, units=units,
+            estimates={k: v.scaled(factor) for k, v in self.estimates.items()}, reference=ref)
+
+    def to_dict(self) -> dict[str, Any]:
+        """A JSON-serialisable dictionary of the whole result (works included)."""
+        out = {
+            "delta_f": self.delta_f,
+            "stderr": self.stderr,
+            "units": self.units,
+            "kT": self.kT,
+            "estimator": self.estimator,
+            "choice_reason": self.choice_reason,
+            "estimates": {k: v.to_dict() for k, v in self.estimates.items()},
+            "work_forward": self.work_forward,
+            "work_reverse": self.work_reverse,
+            "energy_evaluations": self.energy_evaluations,
+            "cost": self.cost,
+            "diagnostics": self.diagnostics,
+            "warnings": list(self.warnings),
+            "flagged": self.flagged,
+            "settings": self.settings,
+            "timings": self.timings,
+            "extras": self.extras,
+            "caution": CAUTION,
+        }
+        if self.reference is not None:
+            out["reference"] = self.reference
+        return _jsonable(out)
+
+    def to_json(self, path) -> None:
+        with open(path, "w") as fh:
+            json.dump(self.to_dict(), fh, indent=1)
+
+    # ------------------------------------------------------------------ text
+    def summary(self) -> str:
+        u = self.units
+        lines = [
+            f"ΔF = F_B − F_A = {self.delta_f:.4f} ± {self.stderr:.4f} {u}"
+            f"   ({self.delta_f / self.kT:.4f} ± {self.stderr / self.kT:.4f} kT, kT = {self.kT:.6g} {u})",
+            f"headline estimator: {self.estimator} — {self.choice_reason}",
+        ]
+        if self.reference is not None:
+            ref = self.reference
+            diff = self.delta_f - ref["delta_f"]
+            lines.append(f"reference: {ref['delta_f']:.4f} {u} ({ref.get('source', 'no source given')}); "
+                         f"difference {diff:+.4f} {u}, tolerance {ref.get('tolerance', float('nan')):.4f}")
+        lines.append("")
+        lines.append(f"  {'estimator':<20s} {'ΔF':>12s} {'stderr':>10s}  error")
+        for name, est in self.estimates.items():
+            lines.append(f"  {name:<20s} {est.delta_f:12.4f} {est.stderr:10.4f}  {est.error_kind}")
+        lines.append("")
+        wf, wr = self.work_forward, self.work_reverse
+        for label, w in (("forward A→B", wf), ("reverse B→A", wr)):
+            finite = w[np.isfinite(w)]
+            if w.size:
+                lines.append(f"  work {label}: {w.size} trajectories, mean {np.mean(finite):.3f} kT, "
+                             f"spread {np.std(finite):.3f} kT, diverged {w.size - finite.size}")
+        sw = self.settings
+        if "switching_steps" in sw:
+            lines.append(f"  switching: {sw.get('switching_steps')} steps, schedule {sw.get('schedule')}, "
+                         f"control {sw.get('control', 'none')}")
+        for end in ("a", "b"):
+            d = self.diagnostics.get(f"sampling_{end}")
+            if d:
+                lines.append(f"  end state {end.upper()} sampler: acceptance {d['acceptance']:.2f}, "
+                             f"autocorrelation {d['autocorrelation_time']:.1f} steps, "
+                             f"effective samples {d['effective_sample_size']:.0f}, chains {d['chains']} "
+                             f"({d['stuck_chains']} stuck)")
+        if "control_decision" in self.extras:
+            lines.append(f"  control: {self.extras['control_decision']}")
+        cost = ", ".join(f"{k} {v:,}" for k, v in self.cost.items() if v)
+        lines.append(f"  cost: {self.energy_evaluations:,} energy evaluations ({cost})")
+        if self.timings:
+            lines.append(f"  time: {self.timings.get('total', sum(self.timings.values())):.1f} s")
+        lines.append("")
+        if self.warnings:
+            lines.append("warnings:" + ("  (result FLAGGED)" if self.flagged else ""))
+            lines.extend(f"  - {w}" for w in self.warnings)
+        else:
+            lines.append("warnings: none")
+        lines.append("")
+        lines.append(CAUTION)
+        return "\n".join(lines)
+
+    def __str__(self) -> str:
+        return self.summary()

@@ -1,0 +1,421 @@
+"""Equilibrium sampling of one state on the path: preconditioned MALA with many chains.
+
+Kernel (Metropolis-adjusted Langevin, Roberts & Tweedie 1996, Bernoulli 2, 341)
+with a constant diagonal preconditioner M and step ε, on the reduced energy u:
+
+    proposal  y = x − ε M ∇u(x) + √(2ε M) ξ,          ξ ~ N(0, I)
+    accept with probability  min(1, exp(−u(y) + u(x) + log q(x|y) − log q(y|x))),
+    log q(y|x) = −|y − x + ε M ∇u(x)|²_{M⁻¹} / (4ε).
+
+The driver (:func:`sample_state`) runs ``chains`` chains in parallel (vmap), in
+fixed-length blocks (one compiled ``lax.scan`` per block shape):
+
+1. warm-up: the step size is adapted towards an acceptance of 0.574, the optimum
+   for MALA (Roberts & Rosenthal 1998, J. R. Stat. Soc. B 60, 255); for vector
+   configurations a diagonal preconditioner is estimated from the chains' variance
+   in doubling windows;
+2. burn-in: blocks are run until the integrated autocorrelation time τ of the
+   recorded observables (reduced energy; the coordinates for vector systems) is
+   small against the trace and the chains agree (split potential-scale reduction
+   below 1.05, Gelman & Rubin 1992 / Vehtari et al. 2021), or the budget share runs out;
+3. production: each chain is continued and sampled every ⌈τ⌉ steps.
+
+Chains whose acceptance collapses (stuck in a steep tail) are excluded from the
+samples, counted and reported; their cost still counts.
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+from typing import NamedTuple
+
+import equinox as eqx
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from .path import Path
+from .types import Array, Configuration
+
+TARGET_ACCEPTANCE = 0.574
+BLOCK_STEPS = 50
+STUCK_ACCEPTANCE = 0.02
+
+
+class ChainState(NamedTuple):
+    position: Array
+    energy: Array
+    grad: Array
+
+
+class StepInfo(NamedTuple):
+    acceptance: Array  # Metropolis acceptance probability of this step
+    energy: Array
+
+
+class Target(eqx.Module):
+    """The reduced energy of one state of a path: an end (``end="a"|"b"``) or λ (``end=None``)."""
+
+    path: Path
+    lam: Array
+    end: str | None = eqx.field(static=True)
+
+    def energy(self, x: Configuration) -> Array:
+        if self.end is not None:
+            return self.path.end_energy(x, self.end)
+        return self.path.energy(x, self.lam)
+
+    def energy_and_grad(self, x: Configuration) -> tuple[Array, Array]:
+        return jax.value_and_grad(self.energy)(x)
+
+    def evaluations(self) -> int:
+        """Energy evaluations per energy-and-gradient call."""
+        return self.path.end_evaluations() if self.end is not None else self.path.evaluations_per_point(1)
+
+
+def end_target(path: Path, end: str) -> Target:
+    return Target(path, jnp.asarray(0.0 if end == "a" else 1.0), end)
+
+
+def window_target(path: Path, lam: float) -> Target:
+    return Target(path, jnp.asarray(lam, dtype=jnp.float64), None)
+
+
+def init_state(target: Target, position: Configuration) -> ChainState:
+    energy, grad = target.energy_and_grad(position)
+    return ChainState(position, energy, grad)
+
+
+def mala_kernel(target: Target):
+    """Build ``kernel(key, state, step_size, preconditioner) -> (state, StepInfo)``."""
+
+    def kernel(key, state: ChainState, step_size, preconditioner):
+        key_noise, key_accept = jax.random.split(key)
+        x, u_x, g_x = state
+        noise = jax.random.normal(key_noise, x.shape, x.dtype)
+        y = x - step_size * preconditioner * g_x + jnp.sqrt(2.0 * step_size * preconditioner) * noise
+        u_y, g_y = target.energy_and_grad(y)
+        forward = jnp.sum(noise**2) / 2.0
+        back_residual = x - y + step_size * preconditioner * g_y
+        backward = jnp.sum(back_residual**2 / preconditioner) / (4.0 * step_size)
+        log_ratio = -(u_y - u_x) - backward + forward
+        log_ratio = jnp.where(jnp.isfinite(log_ratio), log_ratio, -jnp.inf)
+        acceptance = jnp.exp(jnp.minimum(log_ratio, 0.0))
+        accept = jax.random.uniform(key_accept, (), x.dtype) < acceptance
+        new = jax.tree_util.tree_map(lambda a, b: jnp.where(accept, a, b), ChainState(y, u_y, g_y), state)
+        return new, StepInfo(acceptance, new.energy)
+
+    return kernel
+
+
+@eqx.filter_jit
+def run_block(target: Target, key, states: ChainState, log_step, preconditioner, adapt_rate,
+              steps: int, record_every: int):
+    """Advance all chains ``steps`` MALA steps.
+
+    The step size ε = exp(log_step) is shared by all chains; when ``adapt_rate`` > 0
+    it follows a Robbins–Monro update towards :data:`TARGET_ACCEPTANCE` after every
+    step. Returns the new states, the final log step, the mean log step over the
+    block, per-chain mean acceptance, the energy trace (steps, chains) and positions
+    recorded every ``record_every`` steps (or ``None`` when ``record_every`` is 0).
+    """
+    kernel = jax.vmap(mala_kernel(target), in_axes=(0, 0, None, None))
+    chains = states.energy.shape[0]
+
+    def body(carry, key_step):
+        states, log_step = carry
+        keys = jax.random.split(key_step, chains)
+        states, info = kernel(keys, states, jnp.exp(log_step), preconditioner)
+        log_step = log_step + adapt_rate * (jnp.mean(info.acceptance) - TARGET_ACCEPTANCE)
+        return (states, log_step), (info.acceptance, info.energy, log_step, states.position)
+
+    keys = jax.random.split(key, steps)
+    (states, log_step_end), (acc, energies, log_steps, positions) = jax.lax.scan(body, (states, log_step), keys)
+    recorded = positions[record_every - 1 :: record_every] if record_every else None
+    return states, log_step_end, jnp.mean(log_steps), jnp.mean(acc, axis=0), energies, recorded
+
+
+@dataclasses.dataclass
+class StateSamples:
+    """Equilibrium samples of one state and the sampler's diagnostics.
+
+    Attributes:
+        samples: configurations, shape (n, *configuration shape), from healthy chains only.
+        step_size: adapted MALA step ε (reduced units, scaled by ``preconditioner``).
+        preconditioner: the diagonal preconditioner M (configuration shape), 1 where unused.
+        acceptance: mean acceptance over healthy chains in production.
+        autocorrelation_time: integrated autocorrelation time τ (steps) of the slowest observable.
+        effective_sample_size: estimated number of independent samples among ``samples``.
+        evaluations: energy evaluations spent (all chains, warm-up and burn-in included).
+        chains, stuck_chains: chain counts.
+        burn_in_steps: steps per chain discarded before production.
+        equilibrated: True when the burn-in criteria were met within the budget.
+        mixing_statistic: split potential-scale reduction of the energy (1 = well mixed).
+        warnings: plain-language problems found.
+    """
+
+    samples: np.ndarray
+    step_size: float
+    preconditioner: np.ndarray
+    acceptance: float
+    autocorrelation_time: float
+    effective_sample_size: float
+    evaluations: int
+    chains: int
+    stuck_chains: int
+    burn_in_steps: int
+    equilibrated: bool
+    mixing_statistic: float
+    warnings: list[str]
+
+    def diagnostics(self) -> dict:
+        return {
+            "acceptance": self.acceptance,
+            "step_size": self.step_size,
+            "autocorrelation_time": self.autocorrelation_time,
+            "effective_sample_size": self.effective_sample_size,
+            "chains": self.chains,
+            "stuck_chains": self.stuck_chains,
+            "burn_in_steps": self.burn_in_steps,
+            "equilibrated": self.equilibrated,
+            "mixing_statistic": self.mixing_statistic,
+            "evaluations": self.evaluations,
+        }
+
+
+# ------------------------------------------------------------------ time-series analysis
+
+def autocorrelation_time(trace: np.ndarray, window_factor: float = 5.0) -> float:
+    """Integrated autocorrelation time τ = 1 + 2 Σ ρ(t) of ``trace[step, chain]``.
+
+    The autocovariance is centred on the grand mean over all chains (so chains that
+    disagree show up as long correlation) and averaged over chains; the sum is cut
+    by Sokal's automatic window (smallest M with M ≥ c·τ(M), c = 5; Sokal 1997,
+    "Monte Carlo methods in statistical mechanics", Cargèse lectures [mem]).
+    Returns ``len(trace)`` when no window fits (the trace is too short).
+    """
+    trace = np.asarray(trace, dtype=np.float64)
+    if trace.ndim == 1:
+        trace = trace[:, None]
+    n = trace.shape[0]
+    centred = trace - trace.mean()
+    variance = np.mean(centred**2)
+    if n < 4 or variance <= 0 or not np.isfinite(variance):
+        return 1.0
+    size = 1 << int(math.ceil(math.log2(2 * n)))
+    spectrum = np.fft.rfft(centred, n=size, axis=0)
+    acov = np.fft.irfft(spectrum * np.conj(spectrum), n=size, axis=0)[:n].mean(axis=1)
+    acov /= np.arange(n, 0, -1)
+    rho = acov / acov[0]
+    tau = 2.0 * np.cumsum(rho) - 1.0
+    window = np.arange(n)
+    ok = window >= window_factor * tau
+    if not np.any(ok):
+        return float(n)
+    return float(max(1.0, tau[np.argmax(ok)]))
+
+
+def split_mixing_statistic(trace: np.ndarray) -> float:
+    """Split potential-scale reduction of ``trace[step, chain]`` (1.0 = chains agree).
+
+    Each chain is split in halves; the between-half-chain variance of the means is
+    compared with the mean within variance (Gelman & Rubin 1992, Stat. Sci. 7, 457;
+    split form: Vehtari et al. 2021, Bayesian Analysis 16, 667).
+    """
+    trace = np.asarray(trace, dtype=np.float64)
+    n = trace.shape[0] // 2
+    if n < 2:
+        return float("nan")
+    halves = np.concatenate([trace[:n], trace[n : 2 * n]], axis=1)
+    within = np.mean(np.var(halves, axis=0, ddof=1))
+    between = n * np.var(np.mean(halves, axis=0), ddof=1)
+    if within <= 0:
+        return 1.0 if between <= 0 else float("inf")
+    pooled = (n - 1) / n * within + between / n
+    return float(np.sqrt(pooled / within))
+
+
+# ------------------------------------------------------------------ the driver
+
+def _observables(energies: list[np.ndarray], positions: list[np.ndarray] | None):
+    """List of [step, chain] traces used for τ and mixing."""
+    traces = [np.concatenate(energies, axis=0)]
+    if positions:
+        pos = np.concatenate(positions, axis=0)  # (steps, chains, d)
+        pos = pos.reshape(pos.shape[0], pos.shape[1], -1)
+        traces.extend(pos[:, :, i] for i in range(pos.shape[2]))
+    return traces
+
+
+def sample_state(
+    key,
+    target: Target,
+    start: Configuration,
+    *,
+    samples: int,
+    chains: int = 64,
+    evaluation_budget: int,
+    precondition: bool | None = None,
+    min_warmup: int = 200,
+    name: str = "end state",
+    initial_step_size: float | None = None,
+) -> StateSamples:
+    """Draw ``samples`` equilibrium configurations of ``target`` starting from ``start``.
+
+    Args:
+        key: PRNG key.
+        target: the state to sample (reduced energy).
+        start: one configuration where every chain starts (a tiny jitter separates them).
+        samples: number of configurations to return.
+        chains: number of parallel chains.
+        evaluation_budget: most energy evaluations this call may spend; when burn-in
+            has not converged by then, sampling stops early and says so.
+        precondition: diagonal preconditioning; default on for vector configurations
+            (shape (d,)) and off for particle coordinates (periodic wrapping makes
+            coordinate variances meaningless there).
+        name: used in warnings.
+    """
+    start = jnp.asarray(start)
+    if precondition is None:
+        precondition = start.ndim == 1
+    per_call = target.evaluations()
+    key_jitter, key_run = jax.random.split(key)
+    keys = iter(jax.random.split(key_run, 10_000))
+    positions = start[None] + 1e-3 * jax.random.normal(key_jitter, (chains,) + start.shape, start.dtype)
+    states = jax.vmap(target.energy_and_grad)(positions)
+    states = ChainState(positions, states[0], states[1])
+    spent = chains * per_call
+    preconditioner = jnp.ones(start.shape, start.dtype)
+    record = 5 if precondition else 0
+    warnings: list[str] = []
+
+    # initial step: scale of the inverse gradient norm is a safe first guess
+    if initial_step_size is None:
+        gnorm2 = float(jnp.mean(jnp.sum(states.grad.reshape(chains, -1) ** 2, axis=1)))
+        dim = int(np.prod(start.shape)) or 1
+        initial_step_size = float(np.clip(dim / max(gnorm2, 1e-12), 1e-6, 1.0)) * 0.1
+    log_step = jnp.log(jnp.asarray(initial_step_size, start.dtype))
+
+    def block(states, log_step, adapt_rate, record_every):
+        nonlocal spent
+        out = run_block(target, next(keys), states, log_step, preconditioner, adapt_rate, BLOCK_STEPS, record_every)
+        spent += chains * BLOCK_STEPS * per_call
+        return out
+
+    # ---- warm-up: step size (and preconditioner, in doubling windows)
+    warm_blocks = max(1, min_warmup // BLOCK_STEPS)
+    window, done_blocks = 1, 0
+    mean_log_step = log_step
+    while done_blocks < warm_blocks or (precondition and window <= 4):
+        recorded = []
+        for _ in range(window if precondition else warm_blocks):
+            states, log_step, mean_log_step, acc, _, pos = block(states, log_step, 0.05, record)
+            done_blocks += 1
+            if pos is not None:
+                recorded.append(np.asarray(pos))
+            if spent > evaluation_budget * 0.5:
+                break
+        if precondition and recorded:
+            pos = np.concatenate(recorded).reshape(-1, *start.shape)
+            var = np.var(pos, axis=0)
+            scale = np.median(var[var > 0]) if np.any(var > 0) else 1.0
+            var = np.clip(var, scale * 1e-4, scale * 1e4) if scale > 0 else np.ones_like(var)
+            # keep εM fixed in magnitude when M changes so adaptation resumes near its optimum
+            old_mean = float(jnp.mean(preconditioner))
+            preconditioner = jnp.asarray(var, start.dtype)
+            log_step = log_step + jnp.log(old_mean / float(jnp.mean(preconditioner)))
+            mean_log_step = log_step
+        window *= 2
+        if not precondition or spent > evaluation_budget * 0.5:
+            break
+    # one more adaptation block with the final preconditioner
+    states, log_step, mean_log_step, acc, _, _ = block(states, log_step, 0.05, 0)
+    log_step = mean_log_step
+    warmup_steps = (spent // (chains * per_call))
+
+    # ---- burn-in with measurement
+    energies: list[np.ndarray] = []
+    pos_trace: list[np.ndarray] = []
+    acc_blocks: list[np.ndarray] = []
+    tau, rhat, equilibrated = float("nan"), float("nan"), False
+    while True:
+        states, _, _, acc, energy_trace, pos = block(states, log_step, 0.0, record)
+        energies.append(np.asarray(energy_trace))
+        acc_blocks.append(np.asarray(acc))
+        if pos is not None:
+            pos_trace.append(np.asarray(pos))
+        half = len(energies) // 2
+        if half >= 1:
+            # judge the second half of the trace; the first half is burn-in
+            late_e = energies[-half:]
+            late_p = pos_trace[-half:] if pos_trace else None
+            traces = _observables(late_e, late_p)
+            taus = [autocorrelation_time(t) for t in traces]
+            # coordinates are recorded every `record` steps
+            taus = [taus[0]] + [t * record for t in taus[1:]]
+            tau = float(max(taus))
+            rhat = max(split_mixing_statistic(t) for t in traces)
+            if half * BLOCK_STEPS >= 20 * tau and rhat < 1.05:
+                equilibrated = True
+                break
+        production_cost = samples * max(1, math.ceil(tau if np.isfinite(tau) else 1)) * per_call
+        if spent + chains * BLOCK_STEPS * per_call + production_cost > evaluation_budget:
+            break
+    burn_in = warmup_steps + len(energies) * BLOCK_STEPS
+
+    # ---- stuck chains
+    acc_chain = np.mean(np.stack(acc_blocks[-max(1, len(acc_blocks) // 2):]), axis=0)
+    stuck = acc_chain < STUCK_ACCEPTANCE
+    if np.all(stuck):
+        raise RuntimeError(
+            f"{name}: every sampling chain is stuck (acceptance below {STUCK_ACCEPTANCE}); "
+            "check that the energy is smooth and finite near the start configuration")
+    healthy = np.flatnonzero(~stuck)
+    if stuck.any():
+        warnings.append(f"{name}: {int(stuck.sum())} of {chains} sampling chains were stuck (acceptance below "
+                        f"{STUCK_ACCEPTANCE:.0%}) and were excluded from the samples (their cost still counts).")
+
+    # ---- production: every chain continues, sampled every ceil(tau) steps
+    stride = max(1, int(math.ceil(tau))) if np.isfinite(tau) else 1
+    per_chain = int(math.ceil(samples / len(healthy)))
+    record_every = stride
+    collected = []
+    prod_acc = []
+    # run whole blocks with positions recorded every `stride` steps; stride divides the block when small
+    stride_block = stride * max(1, BLOCK_STEPS // stride)
+    while sum(c.shape[0] for c in collected) < per_chain:
+        out = run_block(target, next(keys), states, log_step, preconditioner, 0.0, stride_block, record_every)
+        states, _, _, acc, _, pos = out
+        spent += chains * stride_block * per_call
+        collected.append(np.asarray(pos))
+        prod_acc.append(np.asarray(acc))
+    pos = np.concatenate(collected)[:per_chain]  # (per_chain, chains, ...)
+    pos = pos[:, healthy]
+    # interleave chains so that a prefix of the array draws from every chain
+    flat = np.moveaxis(pos, 0, 1).reshape((len(healthy), per_chain) + start.shape)
+    flat = np.swapaxes(flat, 0, 1).reshape((-1,) + start.shape)[:samples]
+    acceptance = float(np.mean(np.stack(prod_acc)[:, healthy]))
+
+    if not equilibrated:
+        warnings.append(
+            f"{name}: sampling did not pass the equilibration checks within its share of the budget "
+            f"(autocorrelation time {tau:.0f} steps, chain agreement statistic {rhat:.2f}; want < 1.05). "
+            "The end state may be multimodal or slow to mix: raise the budget or give a better start configuration.")
+    if acceptance < 0.2:
+        warnings.append(f"{name}: low sampler acceptance {acceptance:.2f}; the energy may be very rough.")
+    ess = float(len(flat) * min(1.0, stride / max(tau, 1.0))) if np.isfinite(tau) else float("nan")
+    return StateSamples(
+        samples=flat,
+        step_size=float(jnp.exp(log_step)),
+        preconditioner=np.asarray(preconditioner),
+        acceptance=acceptance,
+        autocorrelation_time=float(tau),
+        effective_sample_size=ess,
+        evaluations=int(spent),
+        chains=chains,
+        stuck_chains=int(stuck.sum()),
+        burn_in_steps=int(burn_in),
+        equilibrated=equilibrated,
+        mixing_statistic=float(rhat),
+        warnings=warnings,
+    )

@@ -1,0 +1,357 @@
+"""``estimate()``: from two energy functions to ΔF with an honest error bar.
+
+Host-side orchestration only: validate → sample both end states → pilot switching to
+size the protocol → switch both ways → estimators → diagnostics → :class:`Result`.
+Every stochastic stage gets its own named subkey of ``jax.random.key(seed)``.
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+import time
+from typing import Any, Callable
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from . import diagnostics as diag
+from .estimators import bar, crooks_gaussian, jarzynski, work_overlap
+from .path import LinearPath, Path, make_schedule
+from .planning import PILOT_SCALES, PilotPoint, plan_protocol
+from .results import Result
+from .sampling import StateSamples, end_target, sample_state
+from .switching import run_in_batches, switching_evaluations
+
+DEFAULT_BUDGET = 1_000_000
+PILOT_TRAJECTORIES = 64
+PILOT_STEPS = 32
+SWITCH_BATCH = 128
+DIVERGED_WORK = 1e6  # kT; a larger |work| means the Langevin integration blew up
+
+
+def mark_diverged(works: np.ndarray) -> np.ndarray:
+    """True where a trajectory diverged: non-finite work or |w| > DIVERGED_WORK kT."""
+    works = np.asarray(works)
+    with np.errstate(invalid="ignore"):
+        return ~np.isfinite(works) | (np.abs(works) > DIVERGED_WORK)
+
+
+@dataclasses.dataclass(frozen=True)
+class Options:
+    """Options of :func:`estimate` (all keyword-only there).
+
+    Attributes:
+        budget: total energy evaluations the call may spend (end-state sampling, pilot,
+            training and switching); ``None`` means ``DEFAULT_BUDGET`` when the protocol is
+            chosen automatically, and no limit when both ``switching_steps`` and
+            ``trajectories`` are given.
+        switching_steps: steps per trajectory K; ``None`` chooses K from a pilot run so the
+            work spread is about 1 kT.
+        trajectories: trajectories per direction; ``None`` spends the rest of the budget.
+        schedule: ``"linear"``, ``"cosine"``, ``"power"`` or an explicit λ array (K+1 values).
+        step_scale: switching step relative to the end-state samplers' adapted step;
+            ``None`` chooses it (with K) from pilot runs, see :mod:`fe_tool.planning`.
+        chains: parallel sampling chains per end state.
+        precondition: diagonal preconditioning (``None``: on for vector configurations).
+        path: a :class:`~fe_tool.path.Path` replacing the linear mixing of the energies.
+        control: ``"none"`` (the learned control arrives with ``fe_tool.control``).
+        units: name of the energy unit (shown in the summary and ``to_dict``).
+        reference: optional known ΔF ``{"delta_f", "source", "tolerance"}`` in ``units``.
+        progress: show progress bars (default: only in a terminal).
+    """
+
+    budget: int | None = None
+    switching_steps: int | None = None
+    trajectories: int | None = None
+    schedule: Any = "linear"
+    step_scale: float | None = None
+    chains: int = 64
+    precondition: bool | None = None
+    path: Path | None = None
+    control: Any = "none"
+    units: str = "energy units"
+    reference: dict | None = None
+    progress: bool | None = None
+
+
+OPTION_NAMES = tuple(f.name for f in dataclasses.fields(Options))
+
+
+def _check_options(options: dict) -> Options:
+    unknown = sorted(set(options) - set(OPTION_NAMES))
+    if unknown:
+        raise ValueError(f"unknown option(s) {unknown}; valid options are {list(OPTION_NAMES)}")
+    opts = Options(**options)
+    for name in ("budget", "switching_steps", "trajectories"):
+        value = getattr(opts, name)
+        if value is not None and (not isinstance(value, (int, np.integer)) or value < 1):
+            raise ValueError(f"{name} must be a positive integer, got {value!r}")
+    if opts.trajectories is not None and opts.trajectories < 2:
+        raise ValueError("trajectories must be at least 2 per direction")
+    if opts.step_scale is not None and not (opts.step_scale > 0 and math.isfinite(opts.step_scale)):
+        raise ValueError(f"step_scale must be a positive number, got {opts.step_scale!r}")
+    if opts.chains < 4:
+        raise ValueError(f"chains must be at least 4 (chain agreement is measured between chains), got {opts.chains}")
+    if opts.control not in ("none", None):
+        raise ValueError(f"control={opts.control!r} is not available in this build; use control='none'")
+    if opts.reference is not None and "delta_f" not in opts.reference:
+        raise ValueError("reference must be a mapping with at least 'delta_f' (and ideally 'source', 'tolerance')")
+    return opts
+
+
+def _check_energy(fn: Callable, start: jnp.ndarray, label: str, kT: float) -> None:
+    if not callable(fn):
+        raise ValueError(f"energy_{label} must be a callable taking one configuration array, got {type(fn).__name__}")
+    try:
+        value, grad = jax.value_and_grad(lambda x: jnp.asarray(fn(x)))(start)
+    except TypeError as err:
+        if "scalar" in str(err) or "shape" in str(err):
+            out = jax.eval_shape(fn, start)
+            raise ValueError(f"energy_{label} must return a scalar, but returns shape {getattr(out, 'shape', '?')}; "
+                             "sum the terms (e.g. jnp.sum) before returning") from err
+        raise ValueError(f"energy_{label} could not be traced by JAX at start_{label}: {err}. "
+                         "Write it with jax.numpy operations only (no numpy conversions or Python branches on values)") from err
+    if np.ndim(value) != 0:
+        raise ValueError(f"energy_{label} must return a scalar, but returns shape {np.shape(value)}")
+    if not np.isfinite(float(value)):
+        raise ValueError(f"energy_{label} is not finite at start_{label} ({float(value)}); give a start configuration "
+                         "where the energy is finite (no overlapping particles, inside any walls)")
+    if not np.all(np.isfinite(np.asarray(grad))):
+        raise ValueError(f"the gradient of energy_{label} is not finite at start_{label}; move the start away from "
+                         "singular points (coincident particles, r = 0 of a pair term)")
+    del kT
+
+
+def _validate(energy_a, energy_b, start_a, start_b, kT) -> tuple[jnp.ndarray, jnp.ndarray, float]:
+    try:
+        kT = float(kT)
+    except (TypeError, ValueError):
+        raise ValueError(f"kT must be a positive number in the energy functions' units, got {kT!r}") from None
+    if not (kT > 0 and math.isfinite(kT)):
+        raise ValueError(f"kT must be positive and finite (same units as the energies), got {kT}")
+    arrays = []
+    for label, s in (("a", start_a), ("b", start_b)):
+        arr = np.asarray(s)
+        if arr.dtype.kind not in "fiu" or arr.size == 0:
+            raise ValueError(f"start_{label} must be a non-empty numeric array (a vector or N×3 coordinates)")
+        if not np.all(np.isfinite(arr)):
+            raise ValueError(f"start_{label} contains NaN or inf coordinates")
+        arrays.append(jnp.asarray(arr, dtype=jnp.float64))
+    if arrays[0].shape != arrays[1].shape:
+        raise ValueError(f"start_a has shape {arrays[0].shape} but start_b has shape {arrays[1].shape}; both end states "
+                         "must describe the same configuration space (same number of particles/coordinates)")
+    _check_energy(energy_a, arrays[0], "a", kT)
+    _check_energy(energy_b, arrays[1], "b", kT)
+    return arrays[0], arrays[1], kT
+
+
+def _progress_enabled(flag: bool | None) -> bool:
+    import os
+    import sys
+    if os.environ.get("FE_TOOL_PROGRESS", "") == "0":
+        return False
+    return sys.stderr.isatty() if flag is None else bool(flag)
+
+
+def run_estimators(work_forward: np.ndarray, work_reverse: np.ndarray, seed: int) -> tuple[dict, float]:
+    """All switching estimators (reduced units) and the forward/reverse overlap."""
+    rng = np.random.default_rng(seed)
+    wf = work_forward[np.isfinite(work_forward)]
+    wr = work_reverse[np.isfinite(work_reverse)]
+    estimates = {
+        "jarzynski_forward": jarzynski(wf, direction="forward", rng=rng),
+        "jarzynski_reverse": jarzynski(wr, direction="reverse", rng=rng),
+        "crooks_gaussian": crooks_gaussian(wf, wr, rng=rng),
+        "bar": bar(wf, wr),
+    }
+    return estimates, float(work_overlap(wf, wr))
+
+
+def choose_headline(estimates: dict, overlap: float, sampling: dict[str, StateSamples]) -> tuple[str, str]:
+    """Pick the estimator to report and say why (BAR unless a diagnostic says otherwise)."""
+    b = estimates["bar"]
+    if b.is_finite and overlap >= 0.01:
+        return "bar", ("BAR uses both directions and is the minimum-variance estimator when the work "
+                       f"distributions overlap (overlap {overlap:.2f})")
+    # no overlap: the one-sided average from the better-behaved end
+    fwd, rev = estimates["jarzynski_forward"], estimates["jarzynski_reverse"]
+    candidates = [(e.stderr, n) for n, e in (("jarzynski_forward", fwd), ("jarzynski_reverse", rev)) if e.is_finite]
+    if not candidates:
+        return "bar", "no estimator is reliable; BAR shown for reference"
+    _, name = min(candidates)
+    return name, (f"forward and reverse works barely overlap (overlap {overlap:.3g}), so the one-sided average "
+                  "with the smaller bias-aware error is reported")
+
+
+def _switching_step_sizes(lams: np.ndarray, samples_a: StateSamples, samples_b: StateSamples, scale: float) -> np.ndarray:
+    mid = 0.5 * (lams[:-1] + lams[1:])
+    log_eps = (1 - mid) * math.log(samples_a.step_size) + mid * math.log(samples_b.step_size)
+    return scale * np.exp(log_eps)
+
+
+def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int = 0, **options) -> Result:
+    """ΔF = F_B − F_A between two end-state potentials, with an honest error bar.
+
+    Args:
+        energy_a, energy_b: JAX-traceable functions U(x) -> scalar of one configuration
+            (any shape: a vector, or N×3 coordinates), in the user's energy units.
+        start_a, start_b: configurations where sampling of A and B begins (same shape).
+        kT: thermal energy in the same units as the energies.
+        seed: integer seed; the same seed reproduces the same numbers.
+        **options: see :class:`Options` (e.g. ``budget``, ``switching_steps``,
+            ``trajectories``, ``schedule``).
+
+    Returns:
+        :class:`~fe_tool.results.Result` with ``delta_f`` and ``stderr`` in the user's units.
+
+    Example:
+        >>> import jax.numpy as jnp, fe_tool
+        >>> r = fe_tool.estimate(lambda x: 0.5 * jnp.sum(x**2), lambda x: 2.0 * jnp.sum((x - 1)**2),
+        ...                      jnp.zeros(3), jnp.ones(3))   # ΔF = 1.5 ln 4 kT
+    """
+    t_start = time.perf_counter()
+    opts = _check_options(options)
+    x_a, x_b, kT = _validate(energy_a, energy_b, start_a, start_b, kT)
+    path = opts.path if opts.path is not None else LinearPath(energy_a, energy_b, kT)
+    per_point = path.evaluations_per_point(1)
+    fixed = opts.switching_steps is not None and opts.trajectories is not None
+    budget = opts.budget if opts.budget is not None else (None if fixed else DEFAULT_BUDGET)
+    chains = opts.chains
+    if fixed:
+        samples_wanted = opts.trajectories
+    else:
+        samples_wanted = opts.trajectories or int(np.clip((budget or DEFAULT_BUDGET) // 400, 64, 2048))
+    minimum_sampling = 2 * chains * 400 * path.end_evaluations()
+    if budget is not None:
+        pilot_cost = 0 if (opts.step_scale is not None and opts.switching_steps is not None) else \
+            len(PILOT_SCALES) * 2 * switching_evaluations(path, PILOT_TRAJECTORIES, PILOT_STEPS)
+        minimum = minimum_sampling + pilot_cost + 2 * switching_evaluations(path, 64, 16)
+        if budget < minimum:
+            raise ValueError(f"budget={budget} is too small: end-state sampling with {chains} chains and a minimal "
+                             f"switching run need about {minimum} evaluations; raise budget or lower chains")
+        if fixed:
+            switching_cost = 2 * switching_evaluations(path, opts.trajectories, opts.switching_steps)
+            if switching_cost + minimum_sampling + pilot_cost > budget:
+                raise ValueError(f"switching_steps={opts.switching_steps} with trajectories={opts.trajectories} needs "
+                                 f"{switching_cost} evaluations for switching alone plus ~{minimum_sampling + pilot_cost} for sampling and pilot, "
+                                 f"more than budget={budget}; lower one of them or raise the budget")
+    sampling_share = (budget * 0.2 if budget is not None else 10 * minimum_sampling)
+    if opts.schedule is not None and not isinstance(opts.schedule, str) and opts.switching_steps is None:
+        raise ValueError("an explicit λ array as schedule needs switching_steps = len(schedule) − 1")
+    if isinstance(opts.schedule, str):
+        make_schedule(opts.schedule, 2)  # name check before the long part
+
+    key = jax.random.key(seed)
+    k_sample_a, k_sample_b, k_pilot, k_forward, k_reverse = jax.random.split(key, 5)
+    timings: dict[str, float] = {}
+    cost: dict[str, int] = {}
+    warnings: list[str] = []
+
+    # ---- end states
+    t0 = time.perf_counter()
+    sampled = {}
+    for end, k_end, x0 in (("a", k_sample_a, x_a), ("b", k_sample_b, x_b)):
+        s = sample_state(k_end, end_target(path, end), x0, samples=samples_wanted, chains=chains,
+                         evaluation_budget=int(sampling_share), precondition=opts.precondition,
+                         name=f"end state {end.upper()}")
+        sampled[end] = s
+        cost[f"sampling_{end}"] = s.evaluations
+        warnings.extend(s.warnings)
+    timings["sampling"] = time.perf_counter() - t0
+    samples_a, samples_b = sampled["a"], sampled["b"]
+    precision_a = jnp.asarray(1.0 / samples_a.preconditioner)
+    precision_b = jnp.asarray(1.0 / samples_b.preconditioner)
+    spent = sum(cost.values())
+
+    # ---- pilot: measure dissipation at a few step sizes, then plan K, step and T
+    t0 = time.perf_counter()
+    cost["pilot"] = 0
+    points: list[PilotPoint] = []
+    scales = PILOT_SCALES if opts.step_scale is None else (opts.step_scale,)
+    need_pilot = opts.step_scale is None or opts.switching_steps is None
+    if need_pilot:
+        lams0 = make_schedule(opts.schedule if isinstance(opts.schedule, str) else "linear", PILOT_STEPS)
+        n = min(PILOT_TRAJECTORIES, len(samples_a.samples), len(samples_b.samples))
+        for scale in scales:
+            eps0 = _switching_step_sizes(lams0, samples_a, samples_b, scale)
+            kf, kr, k_pilot = jax.random.split(k_pilot, 3)
+            wf0, _, _ = run_in_batches(path, None, kf, samples_a.samples[:n], lams0, eps0, precision_a, precision_b, "forward", n)
+            wr0, _, _ = run_in_batches(path, None, kr, samples_b.samples[:n], lams0, eps0, precision_a, precision_b, "reverse", n)
+            cost["pilot"] += 2 * switching_evaluations(path, n, PILOT_STEPS)
+            bad_f, bad_r = mark_diverged(wf0), mark_diverged(wr0)
+            ok_f, ok_r = wf0[~bad_f], wr0[~bad_r]
+            hysteresis = float(ok_f.mean() + ok_r.mean()) if ok_f.size > 2 and ok_r.size > 2 else float("inf")
+            spread = float(max(ok_f.std(), ok_r.std())) if ok_f.size > 2 and ok_r.size > 2 else float("inf")
+            points.append(PilotPoint(PILOT_STEPS, scale, hysteresis, spread, int(bad_f.sum() + bad_r.sum())))
+        spent += cost["pilot"]
+    remaining = (budget - spent) if budget is not None else 10**15
+    available = min(len(samples_a.samples), len(samples_b.samples))
+    plan = plan_protocol(points, remaining=remaining, per_point=per_point, available=available,
+                         steps=opts.switching_steps, trajectories=opts.trajectories, scale=opts.step_scale)
+    if points and all(p.diverged for p in points):
+        warnings.append("every pilot switching run had diverging trajectories, even at 1/16 of the sampler's step; "
+                        "the energy may be too steep for Langevin switching.")
+    steps, trajectories, step_scale = plan.steps, min(plan.trajectories, available), plan.scale
+    lams = make_schedule(opts.schedule, steps)
+    step_sizes = _switching_step_sizes(lams, samples_a, samples_b, step_scale)
+    timings["pilot"] = time.perf_counter() - t0
+
+    # ---- switching both ways
+    t0 = time.perf_counter()
+    batch = min(SWITCH_BATCH, trajectories)
+    work_forward, inc_forward, _ = run_in_batches(path, None, k_forward, samples_a.samples[:trajectories], lams,
+                                                  step_sizes, precision_a, precision_b, "forward", batch)
+    work_reverse, inc_reverse, _ = run_in_batches(path, None, k_reverse, samples_b.samples[:trajectories], lams,
+                                                  step_sizes, precision_a, precision_b, "reverse", batch)
+    cost["switching"] = 2 * switching_evaluations(path, trajectories, steps)
+    # diverged trajectories keep their place with work NaN: counted and reported, never hidden
+    work_forward = np.where(mark_diverged(work_forward), np.nan, work_forward)
+    work_reverse = np.where(mark_diverged(work_reverse), np.nan, work_reverse)
+    timings["switching"] = time.perf_counter() - t0
+
+    # ---- estimators and diagnostics
+    t0 = time.perf_counter()
+    msgs, flagged = diag.check_divergence(work_forward, work_reverse)
+    warnings.extend(msgs)
+    estimates, overlap = run_estimators(work_forward, work_reverse, seed)
+    headline, reason = choose_headline(estimates, overlap, sampled)
+    msgs, weight_info = diag.check_weights(work_forward, work_reverse)
+    warnings.extend(msgs)
+    msgs, serious = diag.check_overlap(overlap)
+    warnings.extend(msgs)
+    flagged = flagged or (serious and headline == "bar")
+    msgs, serious = diag.check_agreement(estimates, headline)
+    warnings.extend(msgs)
+    flagged = flagged or serious
+    if not (samples_a.equilibrated and samples_b.equilibrated):
+        flagged = True
+    timings["estimators"] = time.perf_counter() - t0
+    timings["total"] = time.perf_counter() - t_start
+
+    # mean forward work per step (kT) over trajectories that did not diverge: where along λ work is done
+    healthy = ~mark_diverged(work_forward)
+    work_per_step = inc_forward[healthy].mean(axis=0) if healthy.any() else np.full(steps, np.nan)
+    head = estimates[headline]
+    settings = {
+        "switching_steps": steps, "trajectories": trajectories, "schedule": opts.schedule if isinstance(opts.schedule, str) else "explicit",
+        "budget": budget, "chains": chains, "step_scale": step_scale, "control": "none", "seed": seed,
+        "path": path.description(), "precondition": bool(samples_a.preconditioner.std() > 0 or samples_b.preconditioner.std() > 0),
+    }
+    diagnostics = {
+        "sampling_a": samples_a.diagnostics(), "sampling_b": samples_b.diagnostics(),
+        "overlap": overlap, "pilot": [dataclasses.asdict(p) for p in points], "plan": dataclasses.asdict(plan),
+        "diverged_forward": int(np.sum(~np.isfinite(work_forward))),
+        "diverged_reverse": int(np.sum(~np.isfinite(work_reverse))),
+        "switching_step_size_a": float(step_sizes[0]), "switching_step_size_b": float(step_sizes[-1]),
+        **weight_info,
+    }
+    return Result(
+        delta_f=head.delta_f * kT, stderr=head.stderr * kT, estimator=headline, choice_reason=reason,
+        estimates={k: v.scaled(kT) for k, v in estimates.items()},
+        work_forward=work_forward, work_reverse=work_reverse,
+        energy_evaluations=int(sum(cost.values())), cost=cost, kT=kT, units=opts.units,
+        diagnostics=diagnostics, warnings=warnings, flagged=bool(flagged), settings=settings,
+        timings=timings, reference=opts.reference,
+        extras={"lambdas": lams, "work_per_step_forward": work_per_step},
+    )
