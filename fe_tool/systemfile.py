@@ -159,7 +159,7 @@ FIELDS: dict[str, tuple[Callable, set[str]]] = {
 }
 
 
-def _end_state(table: Any, where: str, energy_scale: float) -> tuple[Callable, np.ndarray]:
+def _end_state(table: Any, where: str, energy_scale: float, dim: int | None = None) -> tuple[Callable, np.ndarray]:
     if not isinstance(table, dict):
         _fail(where, "a table such as [end_a] with a 'field' and its parameters", table)
     kind = table.get("field")
@@ -167,7 +167,7 @@ def _end_state(table: Any, where: str, energy_scale: float) -> tuple[Callable, n
         _fail(f"{where}.field", f"one of {sorted(FIELDS)}", kind)
     builder, allowed = FIELDS[kind]
     _check_keys(table, allowed | {"field", "start"}, where)
-    start = _vector(table, "start", where)
+    start = _vector(table, "start", where, dim)
     fn = builder(table, where, start.size)
     if energy_scale != 1.0:
         inner = fn
@@ -210,9 +210,7 @@ def parse_system(data: dict, source: str = "<dict>") -> System:
         if end not in data:
             raise SystemFileError(f"{end}: missing; a system file needs tables [end_a] and [end_b]")
     energy_a, start_a = _end_state(data["end_a"], "end_a", 1.0)
-    energy_b, start_b = _end_state(data["end_b"], "end_b", 1.0)
-    if start_a.shape != start_b.shape:
-        raise SystemFileError(f"end_b.start: expected {start_a.size} coordinates like end_a.start, got {start_b.size}")
+    energy_b, start_b = _end_state(data["end_b"], "end_b", 1.0, dim=start_a.size)
     reference = None
     if "reference" in data:
         ref = data["reference"]

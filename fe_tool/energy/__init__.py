@@ -22,6 +22,7 @@ from fe_tool.energy.box import (
     check_cutoff,
     displacement,
     minimum_image,
+    pair_displacements,
     safe_norm,
     wrap_positions,
 )
@@ -91,8 +92,8 @@ from fe_tool.energy.restraints import (
 
 __all__ = [
     # box
-    "as_box", "box_volume", "check_cutoff", "displacement", "minimum_image", "safe_norm",
-    "wrap_positions",
+    "as_box", "box_volume", "check_cutoff", "displacement", "minimum_image", "pair_displacements",
+    "safe_norm", "wrap_positions",
     # bonded
     "bond_angles", "bond_lengths", "dihedral_angles", "harmonic_angle_energy",
     "harmonic_bond_energy", "periodic_torsion_energy", "periodic_torsion_potential",

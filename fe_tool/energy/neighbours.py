@@ -1,7 +1,8 @@
 """Pair lists of fixed size: all pairs for small systems, a Verlet neighbour list for large ones.
 
-Both are a ``(capacity, 2)`` integer array of pairs ``(i, j)`` with ``i < j``; unused rows
-hold the sentinel ``(n, n)`` and are ignored by the energy functions. Because the shapes
+Both are a ``(capacity, 2)`` integer array of pairs ``(i, j)``, each unordered pair at most
+once (``all_pairs`` has ``i < j``; a cell-built list need not); unused rows hold the
+sentinel ``(n, n)`` and are ignored by the energy functions. Because the shapes
 never change, energies and the list rebuild can live inside ``jit`` and ``lax.scan``.
 
 A neighbour list holds every pair closer than ``cutoff + skin`` at the time it was built
@@ -99,8 +100,8 @@ class NeighbourList(eqx.Module):
     """A fixed-capacity Verlet list and its bookkeeping (a pytree; carry it through scans).
 
     Attributes:
-        pairs: ``(capacity, 2)`` pairs ``i < j`` within ``cutoff + skin`` at the last build;
-            unused rows are ``(n, n)``.
+        pairs: ``(capacity, 2)`` pairs within ``cutoff + skin`` at the last build, each
+            unordered pair once; unused rows are ``(n, n)``.
         reference_positions: ``(n, d)`` positions at the last build.
         pair_count: pairs found at the last build (may exceed ``capacity`` on overflow).
         max_pair_count: the largest ``pair_count`` of any build so far.
@@ -133,10 +134,17 @@ class NeighbourList(eqx.Module):
 
 
 def _neighbour_cell_table(grid: tuple[int, ...]) -> np.ndarray:
-    """For each cell (flattened C order), the flat indices of its 3^d neighbours (itself included)."""
+    """For each cell (flattened C order): itself, then its 13 (in 3-D) "forward" neighbours.
+
+    Half of the 3^d - 1 neighbour offsets (those whose first non-zero component is +1) is
+    enough to visit every pair of adjacent cells once; with at least 3 cells per edge no
+    two offsets reach the same cell.
+    """
     grid_arr = np.array(grid)
     coords = np.stack(np.unravel_index(np.arange(int(np.prod(grid))), grid), axis=1)
-    offsets = np.array(list(itertools.product((-1, 0, 1), repeat=len(grid))))
+    forward = [o for o in itertools.product((-1, 0, 1), repeat=len(grid))
+               if any(o) and o[next(k for k, v in enumerate(o) if v)] == 1]
+    offsets = np.array([(0,) * len(grid)] + forward)
     neighbour_coords = (coords[:, None, :] + offsets[None, :, :]) % grid_arr
     return np.ravel_multi_index(tuple(neighbour_coords.transpose(2, 0, 1)), grid).astype(np.int32)
 
@@ -160,10 +168,11 @@ class NeighbourListBuilder(eqx.Module):
     cell_capacity: int = eqx.field(static=True)
 
     def _candidates(self, positions):
-        """Candidate partners ``(n, m)`` (sentinel ``n``) and the fullest cell's occupancy."""
+        """Candidate partners ``(n, m)`` (sentinel ``n``), the number of leading columns that
+        hold the particle's own cell (there only j > i is kept), and the fullest cell's occupancy."""
         n = self.n_particles
         if self.cell_grid is None:
-            return jnp.broadcast_to(jnp.arange(n), (n, n)), jnp.zeros((), dtype=jnp.int32)
+            return jnp.broadcast_to(jnp.arange(n), (n, n)), n, jnp.zeros((), dtype=jnp.int32)
         grid = jnp.array(self.cell_grid)
         wrapped = wrap_positions(positions, self.box)
         coords = jnp.clip(jnp.floor(wrapped / self.box * grid).astype(jnp.int32), 0, grid - 1)
@@ -177,7 +186,7 @@ class NeighbourListBuilder(eqx.Module):
         table = table.at[sorted_cells, rank].set(order.astype(jnp.int32), mode="drop")
         occupancy = jnp.max(jnp.bincount(cell, length=n_cells)).astype(jnp.int32)
         candidates = table[self.cell_neighbours[cell]].reshape(n, -1)
-        return candidates, occupancy
+        return candidates, self.cell_capacity, occupancy
 
     def build(self, positions: Float[Array, "n d"], previous: NeighbourList | None = None) -> NeighbourList:
         """Build the list from scratch (carrying the sticky counters of ``previous``)."""
@@ -186,24 +195,39 @@ class NeighbourListBuilder(eqx.Module):
             raise ValueError(
                 f"positions has {positions.shape[0]} particles but the builder was made for {n}."
             )
-        candidates, occupancy = self._candidates(positions)
-        i = jnp.broadcast_to(jnp.arange(n)[:, None], candidates.shape)
+        candidates, ordered_columns, occupancy = self._candidates(positions)
+        i = jnp.arange(n)[:, None]
         partner = jnp.minimum(candidates, n - 1)
-        d = minimum_image(positions[:, None, :] - positions[partner], self.box)
+        # One coordinate axis at a time (scalar gathers are much faster than row gathers on CPU).
+        r2 = jnp.zeros(candidates.shape, dtype=positions.dtype)
+        for axis in range(positions.shape[1]):  # over spatial axes, not particles
+            coordinate = positions[:, axis]
+            delta = coordinate[:, None] - coordinate[partner]
+            if self.box is not None:
+                delta = delta - self.box[axis] * jnp.round(delta / self.box[axis])
+            r2 = r2 + delta * delta
         radius = self.cutoff + self.skin
-        close = (candidates < n) & (candidates > i) & (jnp.sum(d * d, axis=-1) < radius * radius)
+        own_cell = jnp.arange(candidates.shape[1])[None, :] < ordered_columns
+        close = ((candidates < n) & (candidates != i) & (~own_cell | (candidates > i))
+                 & (r2 < radius * radius))
         if self.excluded_keys.shape[0] > 0:
             key_dtype = self.excluded_keys.dtype
-            keys = i.astype(key_dtype) * n + candidates.astype(key_dtype)
+            low = jnp.minimum(i, candidates).astype(key_dtype)
+            high = jnp.maximum(i, candidates).astype(key_dtype)
+            keys = low * n + high
             where = jnp.clip(jnp.searchsorted(self.excluded_keys, keys), 0,
                              self.excluded_keys.shape[0] - 1)
             close = close & (self.excluded_keys[where] != keys)
-        flat_close = close.reshape(-1)
-        count = jnp.sum(flat_close, dtype=jnp.int32)
-        slot = jnp.where(flat_close, jnp.cumsum(flat_close) - 1, self.capacity)
-        pairs = jnp.full((self.capacity, 2), n, dtype=jnp.int32)
-        pairs = pairs.at[slot, 0].set(i.reshape(-1).astype(jnp.int32), mode="drop")
-        pairs = pairs.at[slot, 1].set(candidates.reshape(-1).astype(jnp.int32), mode="drop")
+        # Compact the candidate mask into the first `count` rows. A gather driven by a binary
+        # search of the running count is faster on CPU than a scatter of every candidate.
+        running = jnp.cumsum(close.reshape(-1), dtype=jnp.int32)
+        count = running[-1]
+        slots = jnp.arange(self.capacity, dtype=jnp.int32)
+        source = jnp.minimum(jnp.searchsorted(running, slots + 1, side="left"), running.shape[0] - 1)
+        filled = slots < count
+        first = jnp.where(filled, source // candidates.shape[1], n)
+        second = jnp.where(filled, candidates.reshape(-1)[source], n)
+        pairs = jnp.stack([first, second], axis=1).astype(jnp.int32)
         overflow = (count > self.capacity) | (occupancy > self.cell_capacity)
         zero = jnp.zeros((), dtype=jnp.int32)
         if previous is None:
@@ -361,7 +385,7 @@ def make_neighbour_list(
         builder = neighbour_list_builder(
             n, box, cutoff, skin, capacity, exclusions=exclusions, method="cells",
             dimension=dimension,
-            cell_capacity=max(builder.cell_capacity, int(math.ceil(capacity_factor * fullest)) + 4),
+            cell_capacity=int(math.ceil(capacity_factor * fullest)) + 4,
         )
     # One compiled build (host-side setup; eager dispatch of the many small ops is slower).
     neighbours = jax.jit(lambda p: builder.build(p))(jnp.asarray(positions))

@@ -50,7 +50,7 @@ import numpy as np
 from jaxtyping import Array, Bool, Float, Int
 
 from fe_tool import units
-from fe_tool.energy.box import as_box, check_cutoff, minimum_image
+from fe_tool.energy.box import as_box, check_cutoff, pair_displacements
 from fe_tool.energy.neighbours import NeighbourList, all_pairs
 
 DEFAULT_SOFT_CORE_ALPHA = 0.5
@@ -249,7 +249,7 @@ def nonbonded_energy_parts(
     if reaction_field_dielectric is not None and cutoff is None:
         raise ValueError("a reaction field needs a cutoff.")
     i, j, valid, overflow = _resolve_pairs(pairs, n, cutoff, exclusions)
-    d = minimum_image(positions[i] - positions[j], box)
+    d = pair_displacements(positions, i, j, box)
     r2 = jnp.sum(d * d, axis=-1)
     inside = valid if cutoff is None else valid & (r2 < cutoff * cutoff)
     # Padding and out-of-range pairs get a harmless r² so no inf/NaN reaches the gradient.
@@ -362,7 +362,7 @@ def scaled_pair_energy(
     """
     pairs = jnp.asarray(pairs)
     box = as_box(box, positions.shape[-1])
-    d = minimum_image(positions[pairs[:, 0]] - positions[pairs[:, 1]], box)
+    d = pair_displacements(positions, pairs[:, 0], pairs[:, 1], box)
     r2 = jnp.sum(d * d, axis=-1)
     absent = (sigma <= 0.0) | (epsilon == 0.0)
     lj = lennard_jones_pair_energy(r2, jnp.where(absent, 1.0, sigma), jnp.where(absent, 0.0, epsilon))

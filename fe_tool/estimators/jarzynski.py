@@ -161,27 +161,55 @@ def _bootstrap_exponential_average(works: np.ndarray, resamples: int, rng: np.ra
     return out
 
 
-def _gaussian_model(mean: float, std: float, count: int, resamples: int,
-                    rng: np.random.Generator) -> tuple[float, float, str]:
-    """Bias and spread of the N-sample exponential average on Gaussian works N(mean, std²).
+def _lower_half_gaussian(works: np.ndarray) -> tuple[float, float, int]:
+    """Centre, width and degrees of freedom of a Gaussian matched to the low-work half.
 
-    Returns ``(bias, spread, how)``; ``how`` is ``"asymptotic"`` when the closed forms are
-    accurate (N ≥ 10·exp(2s²)) and ``"simulated"`` otherwise.
+    The exponential average is governed by the low-work side, so the model copies that side:
+    centre = median, width² = mean of (w − median)² over the works below the median (for a
+    Gaussian both estimate μ and σ²; for works with a light left tail the model is not
+    needlessly wide).  The degrees of freedom are the number of works below the median.
     """
-    variance = std * std
-    if std == 0.0:
+    centre = float(np.median(works))
+    below = works[works < centre]
+    if below.size == 0:
+        return centre, 0.0, 0
+    return centre, float(np.sqrt(np.mean((below - centre) ** 2))), max(1, int(below.size) - 1)
+
+
+def _gaussian_model(centre: float, width: float, degrees: int, count: int, resamples: int,
+                    rng: np.random.Generator) -> tuple[float, float, str]:
+    """Bias and root-mean-square error of the N-sample exponential average on Gaussian works.
+
+    Once N ≥ 10·exp(2·width²) the asymptotic closed forms are used (``"asymptotic"``:
+    bias = v/2N, rms² = v/N + bias², v = exp(width²) − 1).  Otherwise both are simulated
+    (``"simulated"``) from ``resamples`` sets of N standard normal draws z:
+
+    * bias: mean of ea(centre + width·z) − (centre − width²/2), the finite-N bias of a
+      Gaussian with the fitted width (a bias estimate that sees the unsampled tail);
+    * rms: the root-mean-square error when the width's own uncertainty is propagated: each
+      set uses σ² = width²·ν/χ²_ν (ν = ``degrees``) and the error is measured from
+      centre − σ²/2.  Without this a sample that happens to be narrow would get a narrow
+      model too, and the interval would fail exactly where it is most needed.
+
+    Returns ``(bias, rms, mode)``.
+    """
+    variance = width * width
+    if width == 0.0 or degrees == 0:
         return 0.0, 0.0, "asymptotic"
     if math.log(count) >= math.log(10.0) + 2.0 * variance:
         bias, var = exponential_average_asymptotics(variance, count)
-        return bias, math.sqrt(var), "asymptotic"
+        return bias, math.sqrt(var + bias * bias), "asymptotic"
     rows = max(1, _BLOCK_ELEMENTS // count)
-    values = np.empty(resamples)
+    fixed = np.empty(resamples)
+    spread = np.empty(resamples)
     for start in range(0, resamples, rows):
         stop = min(resamples, start + rows)
-        draws = mean + std * rng.standard_normal((stop - start, count))
-        values[start:stop] = exponential_average(draws, axis=1)
-    truth = mean - 0.5 * variance
-    return float(values.mean() - truth), float(values.std(ddof=1)), "simulated"
+        normals = rng.standard_normal((stop - start, count))
+        fixed[start:stop] = exponential_average(centre + width * normals, axis=1) - (centre - 0.5 * variance)
+        variances = variance * degrees / rng.chisquare(degrees, stop - start)
+        spread[start:stop] = (exponential_average(centre + np.sqrt(variances)[:, None] * normals, axis=1)
+                              - (centre - 0.5 * variances))
+    return float(fixed.mean()), float(np.sqrt(np.mean(spread**2))), "simulated"
 
 
 def jarzynski(
@@ -254,19 +282,20 @@ def jarzynski(
     stderr_boot = float(resampled.std(ddof=1))
     bias_boot = float(resampled.mean() - run_estimate)
 
-    bias_model, spread_model, how = _gaussian_model(float(finite.mean()), float(finite.std(ddof=1)),
-                                                    count, n_bootstrap, generator)
+    centre, left_width, degrees = _lower_half_gaussian(finite)
+    bias_model, rms_model, how = _gaussian_model(centre, left_width, degrees, count, n_bootstrap, generator)
 
-    spread = max(stderr_delta, stderr_boot, spread_model)
     bias = max(0.0, bias_leading, bias_boot, bias_model)
+    stderr = max(math.hypot(max(stderr_delta, stderr_boot), bias), rms_model)
     details.update(
         stderr_delta_method=stderr_delta,
         stderr_bootstrap=stderr_boot,
-        stderr_gaussian_model=spread_model,
+        rms_error_gaussian_model=rms_model,
         bias_leading_order=sign * bias_leading,
         bias_bootstrap=sign * bias_boot,
         bias_gaussian_model=sign * bias_model,
         bias=sign * bias,
         gaussian_model=how,
+        gaussian_model_width=left_width,
     )
-    return Estimate(sign * run_estimate, math.hypot(spread, bias), "jarzynski", "bias-aware", count, details)
+    return Estimate(sign * run_estimate, stderr, "jarzynski", "bias-aware", count, details)
