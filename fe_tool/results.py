@@ -127,9 +127,11 @@ class Result:
     # ------------------------------------------------------------------ text
     def summary(self) -> str:
         u = self.units
+        headline = f"ΔF = F_B − F_A = {self.delta_f:.4f} ± {self.stderr:.4f} {u}"
+        if u != "kT":
+            headline += f"   ({self.delta_f / self.kT:.4f} ± {self.stderr / self.kT:.4f} kT, kT = {self.kT:.6g} {u})"
         lines = [
-            f"ΔF = F_B − F_A = {self.delta_f:.4f} ± {self.stderr:.4f} {u}"
-            f"   ({self.delta_f / self.kT:.4f} ± {self.stderr / self.kT:.4f} kT, kT = {self.kT:.6g} {u})",
+            headline,
             f"headline estimator: {self.estimator} — {self.choice_reason}",
         ]
         if self.reference is not None:

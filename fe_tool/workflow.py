@@ -27,6 +27,7 @@ DEFAULT_BUDGET = 1_000_000
 PILOT_TRAJECTORIES = 64
 PILOT_STEPS = 32
 SWITCH_BATCH = 128
+CONTROL_MODES = ("none", "learned", "auto")
 DIVERGED_WORK = 1e6  # kT; a larger |work| means the Langevin integration blew up
 
 
@@ -55,7 +56,15 @@ class Options:
         chains: parallel sampling chains per end state.
         precondition: diagonal preconditioning (``None``: on for vector configurations).
         path: a :class:`~fe_tool.path.Path` replacing the linear mixing of the energies.
-        control: ``"none"`` (the learned control arrives with ``fe_tool.control``).
+        control: ``"none"`` (plain annealed switching), ``"learned"`` (train a control drift and
+            the λ schedule, training counted in the budget), ``"auto"`` (train a short pilot and
+            keep the control only if the measured gain in work spread pays for its cost), a
+            saved control file, or a :class:`~fe_tool.control.ControlOutcome` /
+            :class:`~fe_tool.control.LoadedControl` to reuse (warm start for ``"learned"``
+            via ``control_settings={"warm_start": ...}``).
+        control_settings: keyword arguments for :func:`fe_tool.control.prepare_control`
+            (e.g. ``objective``, ``learn_schedule``, ``warm_start``).
+        save_control: write the trained control and protocol to this file.
         units: name of the energy unit (shown in the summary and ``to_dict``).
         reference: optional known ΔF ``{"delta_f", "source", "tolerance"}`` in ``units``.
         progress: show progress bars (default: only in a terminal).
@@ -70,6 +79,8 @@ class Options:
     precondition: bool | None = None
     path: Path | None = None
     control: Any = "none"
+    control_settings: dict | None = None
+    save_control: str | None = None
     units: str = "energy units"
     reference: dict | None = None
     progress: bool | None = None
@@ -93,8 +104,11 @@ def _check_options(options: dict) -> Options:
         raise ValueError(f"step_scale must be a positive number, got {opts.step_scale!r}")
     if opts.chains < 4:
         raise ValueError(f"chains must be at least 4 (chain agreement is measured between chains), got {opts.chains}")
-    if opts.control not in ("none", None):
-        raise ValueError(f"control={opts.control!r} is not available in this build; use control='none'")
+    if isinstance(opts.control, str) and opts.control not in CONTROL_MODES:
+        import os
+        if not os.path.exists(opts.control):
+            raise ValueError(f"control={opts.control!r}: use one of {list(CONTROL_MODES)}, a saved control file, "
+                             "or a trained control object")
     if opts.reference is not None and "delta_f" not in opts.reference:
         raise ValueError("reference must be a mapping with at least 'delta_f' (and ideally 'source', 'tolerance')")
     return opts
@@ -190,6 +204,28 @@ def _switching_step_sizes(lams: np.ndarray, samples_a: StateSamples, samples_b: 
     return scale * np.exp(log_eps)
 
 
+def _prepare_control(opts, key, path, samples_a, samples_b, lams, step_sizes, precision_a, precision_b, remaining,
+                     probe):
+    """Train, decide on or reuse a control; returns (drift, lams, step_sizes, report, outcome-or-None)."""
+    from .control import ControlOutcome, LoadedControl, load_control, prepare_control
+
+    settings = dict(opts.control_settings or {})
+    reuse = opts.control
+    if isinstance(reuse, str) and reuse not in CONTROL_MODES:
+        reuse = load_control(reuse, expected_fingerprint=path.fingerprint_probe(np.asarray(probe)), path=path)
+    if isinstance(reuse, (ControlOutcome, LoadedControl)):
+        settings.setdefault("warm_start", reuse)
+        mode = "reuse"
+    else:
+        mode = opts.control
+    outcome = prepare_control(key, path, jnp.asarray(samples_a.samples), jnp.asarray(samples_b.samples),
+                              jnp.asarray(lams), jnp.asarray(step_sizes), precision_a, precision_b, mode=mode,
+                              budget=int(remaining), progress=_progress_enabled(opts.progress), **settings)
+    report = outcome.to_dict()
+    return (outcome.drift, np.asarray(outcome.lams), np.asarray(outcome.step_sizes), report,
+            outcome if outcome.control is not None else None)
+
+
 def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int = 0, **options) -> Result:
     """ΔF = F_B − F_A between two end-state potentials, with an honest error bar.
 
@@ -243,7 +279,7 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
         make_schedule(opts.schedule, 2)  # name check before the long part
 
     key = jax.random.key(seed)
-    k_sample_a, k_sample_b, k_pilot, k_forward, k_reverse = jax.random.split(key, 5)
+    k_sample_a, k_sample_b, k_pilot, k_forward, k_reverse, k_control = jax.random.split(key, 6)
     timings: dict[str, float] = {}
     cost: dict[str, int] = {}
     warnings: list[str] = []
@@ -297,12 +333,30 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
     step_sizes = _switching_step_sizes(lams, samples_a, samples_b, step_scale)
     timings["pilot"] = time.perf_counter() - t0
 
+    # ---- learned control (optional): trains within the remaining budget
+    drift, control_report = None, None
+    if opts.control not in ("none", None):
+        t0 = time.perf_counter()
+        drift, lams, step_sizes, control_report, trained = _prepare_control(
+            opts, k_control, path, samples_a, samples_b, lams, step_sizes, precision_a, precision_b, remaining,
+            x_a)
+        cost["training"] = int(control_report["evaluations"])
+        if opts.trajectories is None:
+            left = remaining - cost["training"]
+            trajectories = int(min(available, max(2, left // (2 * per_point * (steps + 1)))))
+        if opts.save_control and trained is not None:
+            from .control import save_control
+            save_control(opts.save_control, trained, fingerprint=path.fingerprint_probe(np.asarray(x_a)),
+                         settings={"switching_steps": steps, "kT": kT})
+        warnings.extend(control_report.get("warnings", []))
+        timings["training"] = time.perf_counter() - t0
+
     # ---- switching both ways
     t0 = time.perf_counter()
     batch = min(SWITCH_BATCH, trajectories)
-    work_forward, inc_forward, _ = run_in_batches(path, None, k_forward, samples_a.samples[:trajectories], lams,
+    work_forward, inc_forward, _ = run_in_batches(path, drift, k_forward, samples_a.samples[:trajectories], lams,
                                                   step_sizes, precision_a, precision_b, "forward", batch)
-    work_reverse, inc_reverse, _ = run_in_batches(path, None, k_reverse, samples_b.samples[:trajectories], lams,
+    work_reverse, inc_reverse, _ = run_in_batches(path, drift, k_reverse, samples_b.samples[:trajectories], lams,
                                                   step_sizes, precision_a, precision_b, "reverse", batch)
     cost["switching"] = 2 * switching_evaluations(path, trajectories, steps)
     # diverged trajectories keep their place with work NaN: counted and reported, never hidden
@@ -335,7 +389,8 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
     head = estimates[headline]
     settings = {
         "switching_steps": steps, "trajectories": trajectories, "schedule": opts.schedule if isinstance(opts.schedule, str) else "explicit",
-        "budget": budget, "chains": chains, "step_scale": step_scale, "control": "none", "seed": seed,
+        "budget": budget, "chains": chains, "step_scale": step_scale,
+        "control": opts.control if isinstance(opts.control, str) else type(opts.control).__name__, "seed": seed,
         "path": path.description(), "precondition": bool(samples_a.preconditioner.std() > 0 or samples_b.preconditioner.std() > 0),
     }
     diagnostics = {
@@ -353,5 +408,7 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
         energy_evaluations=int(sum(cost.values())), cost=cost, kT=kT, units=opts.units,
         diagnostics=diagnostics, warnings=warnings, flagged=bool(flagged), settings=settings,
         timings=timings, reference=opts.reference,
-        extras={"lambdas": lams, "work_per_step_forward": work_per_step},
+        extras={"lambdas": lams, "work_per_step_forward": work_per_step,
+                **({"control": control_report, "control_decision": control_report.get("decision", "")}
+                   if control_report else {})},
     )

@@ -36,7 +36,7 @@ def finite_difference_gradient(function, x, step=1e-6):
 
 
 def assert_gradient_matches(function, x, rtol=1e-6, atol=1e-6):
-    analytic = jax.grad(function)(jnp.asarray(x, dtype=jnp.float64))
+    analytic = jax.jit(jax.grad(function))(jnp.asarray(x, dtype=jnp.float64))
     numeric = finite_difference_gradient(function, x)
     assert bool(jnp.all(jnp.isfinite(analytic)))
     np.testing.assert_allclose(analytic, numeric, rtol=rtol, atol=atol)
@@ -207,23 +207,30 @@ def test_soft_core_by_hand_and_end_states():
     x, length = jittered_lattice(4, 0.5, key_seed=3)
     box = jnp.full(3, length)
     n = x.shape[0]
-    lj = E.lennard_jones_parameters(jnp.ones(n), jnp.ones(n))
     alchemical = jnp.zeros(n, bool).at[0].set(True)
-    settings = dict(box=box, cutoff=2.5)
-    plain = E.lennard_jones_energy(x, lj, **settings)
-    coupled = E.lennard_jones_energy(x, lj, alchemical=alchemical, lj_coupling=1.0, **settings)
-    assert float(coupled) == pytest.approx(float(plain), rel=1e-13)
-    decoupled = E.lennard_jones_energy(x, lj, alchemical=alchemical, lj_coupling=0.0, **settings)
-    # λ = 0: particle 0 no longer interacts with the rest; same as the system without it.
-    rest = E.lennard_jones_energy(x[1:], E.lennard_jones_parameters(jnp.ones(n - 1), jnp.ones(n - 1)),
-                                  **settings)
-    assert float(decoupled) == pytest.approx(float(rest), rel=1e-13)
-    # Coulomb scale: 0 removes alchemical–environment electrostatics.
     charges = jnp.where(jnp.arange(n) % 2 == 0, 0.5, -0.5)
-    coulomb_off = E.coulomb_energy(x, charges, alchemical=alchemical, coulomb_scale=0.0,
-                                   reaction_field_dielectric=math.inf, **settings)
-    coulomb_rest = E.coulomb_energy(x[1:], charges[1:], reaction_field_dielectric=math.inf, **settings)
-    assert float(coulomb_off) == pytest.approx(float(coulomb_rest), rel=1e-12)
+    settings = dict(box=box, cutoff=2.5, reaction_field_dielectric=math.inf)
+
+    @jax.jit
+    def energies(p):
+        full = E.lennard_jones_parameters(jnp.ones(n), jnp.ones(n))
+        rest = E.lennard_jones_parameters(jnp.ones(n - 1), jnp.ones(n - 1))
+        return dict(
+            plain=E.lennard_jones_energy(p, full, **settings),
+            coupled=E.lennard_jones_energy(p, full, alchemical=alchemical, lj_coupling=1.0, **settings),
+            decoupled=E.lennard_jones_energy(p, full, alchemical=alchemical, lj_coupling=0.0, **settings),
+            rest=E.lennard_jones_energy(p[1:], rest, **settings),
+            coulomb_off=E.coulomb_energy(p, charges, alchemical=alchemical, coulomb_scale=0.0, **settings),
+            coulomb_rest=E.coulomb_energy(p[1:], charges[1:], **settings),
+        )
+
+    u = {k: float(v) for k, v in energies(x).items()}
+    assert u["coupled"] == pytest.approx(u["plain"], rel=1e-13)
+    # λ = 0: particle 0 no longer interacts with the rest; same as the system without it.
+    assert u["decoupled"] == pytest.approx(u["rest"], rel=1e-13)
+    # Coulomb scale 0 removes alchemical–environment electrostatics.
+    coulomb_off, coulomb_rest = u["coulomb_off"], u["coulomb_rest"]
+    assert coulomb_off == pytest.approx(coulomb_rest, rel=1e-12)
 
 
 # ---------------------------------------------------------------------------
@@ -248,8 +255,9 @@ def test_nonbonded_gradients_match_finite_differences():
 
     assert_gradient_matches(energy, x, rtol=1e-6, atol=1e-6)
     # ∂U/∂λ_LJ (for thermodynamic integration) against a central difference.
-    d_lambda = jax.grad(energy, argnums=1)(x, 0.6)
-    numeric = (energy(x, 0.6 + 1e-6) - energy(x, 0.6 - 1e-6)) / 2e-6
+    d_lambda = jax.jit(jax.grad(energy, argnums=1))(x, 0.6)
+    compiled = jax.jit(energy)
+    numeric = (compiled(x, 0.6 + 1e-6) - compiled(x, 0.6 - 1e-6)) / 2e-6
     assert float(d_lambda) == pytest.approx(float(numeric), rel=1e-6)
 
 
@@ -360,14 +368,15 @@ def test_model_tail_correction_scales_with_coupling(lj_fluid):
     term = E.nonbonded_term(n, lennard_jones=lj, cutoff=2.5, alchemical=[0], tail_correction_box=box)
     model = E.assemble([term], box=box, units="reduced")
     u_tail = E.lennard_jones_tail_energy_per_particle(n / volume, 2.5)
-    parts = model.components(x)
+    components = jax.jit(lambda p, lam: model.components(p, lj_coupling=lam))
+    parts = components(x, 1.0)
     assert float(parts["nonbonded.lj_tail"]) == pytest.approx(n * u_tail, rel=1e-12)
     # Coupled − decoupled tail = μ_tail = 2 u_tail/N at the density of the N−1 environment particles.
-    parts0 = model.components(x, lj_coupling=0.0)
+    parts0 = components(x, 0.0)
     mu_tail = E.lennard_jones_tail_chemical_potential((n - 1) / volume, 2.5)
     difference = parts["nonbonded.lj_tail"] - parts0["nonbonded.lj_tail"]
     assert float(difference) == pytest.approx(mu_tail, rel=1e-12)
-    halfway = model.components(x, lj_coupling=0.5)["nonbonded.lj_tail"]
+    halfway = components(x, 0.5)["nonbonded.lj_tail"]
     assert float(halfway - parts0["nonbonded.lj_tail"]) == pytest.approx(0.5 * mu_tail, rel=1e-12)
 
 
@@ -458,8 +467,8 @@ def test_assembled_butane_like_model_equals_sum_of_terms():
     ]
     model = E.assemble(terms)
     # (jit a closure: jax.jit hashes bound methods, and Modules holding arrays are unhashable)
-    components = jax.jit(lambda p, **couplings: model.components(p, **couplings))
-    parts = components(x)
+    components = jax.jit(lambda p, lam, scale: model.components(p, lj_coupling=lam, coulomb_scale=scale))
+    parts = components(x, 1.0, 1.0)
     assert set(parts) == {"bonds", "angles", "rb_torsions", "pairs_14", "nonbonded.lennard_jones",
                           "nonbonded.coulomb", "position_restraints"}
     # The probe (4) interacts with everything; within the chain only the 1-4 pair (0, 3) is non-excluded
@@ -473,9 +482,8 @@ def test_assembled_butane_like_model_equals_sum_of_terms():
     r03 = float(jnp.linalg.norm(x[0] - x[3]))
     pair_14 = 4 * 0.3 * ((0.39 / r03) ** 12 - (0.39 / r03) ** 6) + 0.8333 * f * (0.1 * -0.1) / r03
     assert float(parts["pairs_14"]) == pytest.approx(pair_14, rel=1e-12)
-    assert float(jax.jit(E.energy_function(model))(x)) == pytest.approx(float(sum(parts.values())), rel=1e-14)
     # Decoupling the probe leaves only intramolecular terms.
-    off = components(x, lj_coupling=0.0, coulomb_scale=0.0)
+    off = components(x, 0.0, 0.0)
     assert float(off["nonbonded.lennard_jones"]) == 0.0 and float(off["nonbonded.coulomb"]) == 0.0
     alchemical = E.alchemical_energy_function(model)
     assert_gradient_matches(lambda p: alchemical(p, 0.4, 0.9), x, rtol=1e-5, atol=1e-4)
@@ -487,7 +495,7 @@ def test_assembled_butane_like_model_equals_sum_of_terms():
         return alchemical(p, lam, 1.0)
 
     compiled = jax.jit(counted)
-    compiled(x, 0.5)
+    assert float(compiled(x, 1.0)) == pytest.approx(float(sum(parts.values())), rel=1e-14)
     compiled(x + 0.01, 0.7)
     assert len(traces) == 1
 

@@ -182,7 +182,7 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
                     mode: str = "learned", budget: int, objective: str = "kl", learn_schedule: bool = True,
                     learn_steps: str | bool = "global", learn_network: bool = True, warm_start=None,
                     progress: bool | None = None, training_steps: int | None = None,
-                    trajectories_per_step: int = 32, validation_trajectories: int = 128,
+                    trajectories_per_step: int = 16, validation_trajectories: int = 128,
                     learning_rate: float | None = None, max_training_fraction: float = 0.5,
                     pilot_fraction: float = 0.1, max_optimiser_steps: int = 3000, check_every: int | None = None,
                     patience: int = 4, network: dict | None = None, drift_bound_factor: float = 5.0) -> ControlOutcome:

@@ -1,0 +1,482 @@
+"""The windows route: equilibrium sampling at a ladder of λ values, then MBAR / BAR / TI.
+
+Plan → run → :class:`~fe_tool.results.Result`, the same shape as :func:`fe_tool.workflow.estimate`:
+
+1. a ladder λ_0 = 0 < … < λ_{K−1} = 1 on one path (Gauss–Legendre nodes plus both end
+   states, uniform, or any schedule of :data:`fe_tool.path.SCHEDULES`, or explicit values);
+2. each window is sampled by the Metropolis-adjusted sampler of :mod:`fe_tool.sampling`
+   (its own step-size adaptation, burn-in until equilibrated, thinning by the measured
+   autocorrelation time, stuck chains excluded and reported), every window with the same
+   number of samples and the same share of the budget;
+3. optionally (``exchange=True``) a production phase with Hamiltonian replica exchange:
+   after every sweep of sampler steps, configurations of neighbouring windows swap with
+   probability min(1, exp(u_i(x_i) + u_j(x_j) − u_i(x_j) − u_j(x_i))) (Sugita, Kitao &
+   Okamoto 2000, J. Chem. Phys. 113, 6042 for the Hamiltonian form), even and odd pairs
+   alternating; acceptance per pair is reported;
+4. the reduced energy of every sample at every window (``reduced_energies[window, sample]``,
+   ``path.energies_at``; counted as ``path.evaluations_per_point(K)`` per sample);
+5. MBAR endpoint (headline), neighbour BAR and TI as extra estimates; the MBAR overlap
+   matrix with a warning and a suggested λ to insert where neighbours barely overlap.
+
+The energy-evaluation count (``Result.energy_evaluations``) includes every sampler step of
+every chain (stuck ones too), the exchange energies and the analysis energies.
+"""
+from __future__ import annotations
+
+import math
+import time
+from typing import Any
+
+import equinox as eqx
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from .estimators import gauss_legendre_windows, mbar, neighbour_bar, thermodynamic_integration
+from .estimators.record import Estimate
+from .path import SCHEDULES, LinearPath, Path, make_schedule
+from .results import Result
+from .sampling import (
+    ChainState,
+    StateSamples,
+    autocorrelation_time,
+    mala_kernel,
+    sample_state,
+    window_target,
+)
+from .workflow import _validate
+
+DEFAULT_WINDOWS = 10             # with a budget: at most this many (see _default_window_count)
+OVERLAP_WARNING = 0.03           # smallest acceptable MBAR overlap between neighbouring windows
+ANALYSIS_BATCH = 1024            # configurations per compiled call of the ladder energies
+SPACINGS = ("gauss-legendre", "uniform", *sorted(SCHEDULES))
+ASSUMED_THINNING = 8             # sampler steps per kept sample used to size the windows
+
+
+# --------------------------------------------------------------------------- the ladder
+
+def window_ladder(windows: int | np.ndarray | list | None = None,
+                  spacing: str = "gauss-legendre") -> tuple[np.ndarray, np.ndarray | None]:
+    """λ values of the windows, and the Gauss–Legendre weights of the interior nodes if any.
+
+    Args:
+        windows: ``None`` (:data:`DEFAULT_WINDOWS`), a count, or explicit increasing λ values
+            in [0, 1] that include 0 and 1.  For ``spacing="gauss-legendre"`` a count ``n``
+            places ``n`` Gauss–Legendre nodes *and* the two end states (n + 2 windows): the
+            nodes exclude 0 and 1, and MBAR needs samples of both ends to give ΔF.
+        spacing: ``"gauss-legendre"``, ``"uniform"`` or a schedule name of
+            :data:`fe_tool.path.SCHEDULES` (``"linear"``, ``"cosine"``, ``"power"``).
+
+    Returns:
+        ``(lambdas, gl_weights)``: lambdas float64 (K,) with λ_0 = 0 and λ_{K−1} = 1;
+        ``gl_weights`` (K − 2,) when lambdas[1:-1] are Gauss–Legendre nodes, else ``None``.
+
+    Example:
+        >>> window_ladder(3)   # (0, 0.1127, 0.5, 0.8873, 1), weights (5/18, 4/9, 5/18)
+    """
+    if windows is not None and not isinstance(windows, (int, np.integer)):
+        lams = np.asarray(windows, dtype=np.float64)
+        if lams.ndim != 1 or lams.size < 2:
+            raise ValueError(f"windows as λ values must be a 1-D array of at least 2 values, got shape {lams.shape}")
+        if not (abs(lams[0]) < 1e-12 and abs(lams[-1] - 1.0) < 1e-12 and np.all(np.diff(lams) > 0)):
+            raise ValueError("windows as λ values must increase strictly from 0 to 1 (both end states are needed "
+                             "for the MBAR endpoint estimate)")
+        lams = lams.copy()
+        lams[0], lams[-1] = 0.0, 1.0
+        interior = lams[1:-1]
+        if interior.size:
+            nodes, weights = gauss_legendre_windows(interior.size)
+            if np.max(np.abs(interior - nodes)) < 1e-10:
+                return lams, weights
+        return lams, None
+    count = DEFAULT_WINDOWS if windows is None else int(windows)
+    if spacing == "gauss-legendre":
+        if count < 1:
+            raise ValueError(f"windows must be at least 1 Gauss–Legendre node, got {count}")
+        nodes, weights = gauss_legendre_windows(count)
+        return np.concatenate([[0.0], nodes, [1.0]]), weights
+    if count < 2:
+        raise ValueError(f"windows must be at least 2 (both end states), got {count}")
+    if spacing == "uniform":
+        spacing = "linear"
+    if spacing not in SCHEDULES:
+        raise ValueError(f"unknown spacing {spacing!r}; choose one of {list(SPACINGS)} or pass λ values as windows")
+    return make_schedule(spacing, count - 1), None
+
+
+# --------------------------------------------------------------------------- analysis energies
+
+@eqx.filter_jit
+def _ladder_energies(path: Path, points, lams):
+    return jax.vmap(lambda x: path.energies_at(x, lams))(points)
+
+
+@eqx.filter_jit
+def _lambda_derivatives(path: Path, points, lam):
+    return jax.vmap(lambda x: path.lambda_derivative(x, lam))(points)
+
+
+def _batched(fn, path, points: np.ndarray, extra) -> np.ndarray:
+    """Apply ``fn`` in fixed-size batches (padded) so each shape compiles once."""
+    out = []
+    n = points.shape[0]
+    for start in range(0, n, ANALYSIS_BATCH):
+        chunk = points[start:start + ANALYSIS_BATCH]
+        pad = ANALYSIS_BATCH - chunk.shape[0] if n > ANALYSIS_BATCH else 0
+        if pad:
+            chunk = np.concatenate([chunk, np.repeat(chunk[-1:], pad, axis=0)])
+        value = np.asarray(fn(path, jnp.asarray(chunk), extra))
+        out.append(value[:value.shape[0] - pad] if pad else value)
+    return np.concatenate(out)
+
+
+def _statistical_inefficiency(values: np.ndarray, chains: int) -> float:
+    """τ of a window's observable; samples are interleaved over ``chains`` healthy chains."""
+    chains = max(1, int(chains))
+    usable = (values.size // chains) * chains
+    if usable < 4 * chains:
+        return 1.0
+    return max(1.0, autocorrelation_time(values[:usable].reshape(-1, chains)))
+
+
+# --------------------------------------------------------------------------- replica exchange
+
+def _exchange_run(path: Path, key, positions, lams, step_sizes, preconditioners, *, sweeps: int,
+                  steps_per_sweep: int):
+    """Production with Hamiltonian exchange between neighbouring windows.
+
+    ``positions`` (K, C, ...) start configurations per window and chain; one jitted scan over
+    sweeps, each sweep ``steps_per_sweep`` MALA steps in every window (vmap over windows and
+    chains), then one swap attempt per neighbouring pair (even pairs on even sweeps, odd on odd).
+    Returns the positions after every sweep (sweeps, K, C, ...), swap acceptance
+    probabilities (sweeps, K − 1, C) (NaN for pairs not attempted), and the step acceptance.
+    """
+    windows = lams.shape[0]
+
+    def energy(x, lam):
+        return path.energy(x, lam)
+
+    def init(x, lam):
+        u, g = jax.value_and_grad(energy)(x, lam)
+        return ChainState(x, u, g)
+
+    states = jax.vmap(jax.vmap(init, in_axes=(0, None)), in_axes=(0, 0))(positions, lams)
+
+    def mala_one(key, state, lam, step, precond):
+        return mala_kernel(window_target(path, lam))(key, state, step, precond)
+
+    # vmap over chains (inner) and windows (outer)
+    step_all = jax.vmap(jax.vmap(mala_one, in_axes=(0, 0, None, None, None)), in_axes=(0, 0, 0, 0, 0))
+
+    pair = jnp.arange(windows - 1)
+
+    def sweep(carry, inputs):
+        states, = carry
+        key, parity = inputs
+        key_steps, key_swap = jax.random.split(key)
+
+        def one_step(states, k):
+            keys = jax.random.split(k, windows * positions.shape[1]).reshape(windows, positions.shape[1])
+            states, info = step_all(keys, states, lams, step_sizes, preconditioners)
+            return states, info.acceptance
+
+        states, acc = jax.lax.scan(one_step, states, jax.random.split(key_steps, steps_per_sweep))
+        x = states.position
+        # u_k(x_k) and u_{k+1}(x_k), u_k(x_{k+1})
+        u_own = states.energy
+        u_up = jax.vmap(jax.vmap(energy, in_axes=(0, None)), in_axes=(0, 0))(x[:-1], lams[1:])
+        u_down = jax.vmap(jax.vmap(energy, in_axes=(0, None)), in_axes=(0, 0))(x[1:], lams[:-1])
+        log_ratio = u_own[:-1] + u_own[1:] - u_up - u_down
+        prob = jnp.exp(jnp.minimum(jnp.where(jnp.isfinite(log_ratio), log_ratio, -jnp.inf), 0.0))
+        active = (pair % 2) == parity
+        uniform = jax.random.uniform(key_swap, prob.shape)
+        swap = active[:, None] & (uniform < prob)            # (K-1, C); active pairs are disjoint
+        swap_up = jnp.concatenate([swap, jnp.zeros_like(swap[:1])])     # window k takes k+1
+        swap_down = jnp.concatenate([jnp.zeros_like(swap[:1]), swap])   # window k takes k−1
+        shape = (windows, x.shape[1]) + (1,) * (x.ndim - 2)
+        x_up = jnp.concatenate([x[1:], x[-1:]])
+        x_down = jnp.concatenate([x[:1], x[:-1]])
+        new_x = jnp.where(swap_up.reshape(shape), x_up, jnp.where(swap_down.reshape(shape), x_down, x))
+        states = jax.vmap(jax.vmap(init, in_axes=(0, None)), in_axes=(0, 0))(new_x, lams)
+        prob_report = jnp.where(active[:, None], prob, jnp.nan)
+        return (states,), (new_x, prob_report, jnp.mean(acc, axis=0))
+
+    keys = jax.random.split(key, sweeps)
+    parities = jnp.arange(sweeps) % 2
+    _, (trace, swap_prob, acceptance) = jax.lax.scan(sweep, (states,), (keys, parities))
+    return trace, swap_prob, acceptance
+
+
+_exchange_jit = eqx.filter_jit(_exchange_run)
+
+
+# --------------------------------------------------------------------------- the route
+
+def _overlap_warnings(lams: np.ndarray, overlap: np.ndarray) -> tuple[list[str], list[float], list[float]]:
+    warnings, inserts, neighbour = [], [], []
+    for k in range(lams.size - 1):
+        o = float(min(overlap[k, k + 1], overlap[k + 1, k]))
+        neighbour.append(o)
+        if o < OVERLAP_WARNING:
+            # overlap decays roughly geometrically with the gap: split it so each piece reaches the threshold
+            pieces = 2 if o <= 0 else int(min(8, max(2, math.ceil(math.log(max(o, 1e-300)) / math.log(OVERLAP_WARNING)))))
+            new = [float(lams[k] + (lams[k + 1] - lams[k]) * j / pieces) for j in range(1, pieces)]
+            inserts.extend(new)
+            warnings.append(f"windows λ = {lams[k]:.4g} and λ = {lams[k + 1]:.4g} barely overlap (MBAR overlap "
+                            f"{o:.3g} < {OVERLAP_WARNING}); the error bar there is unreliable. Insert windows at "
+                            f"λ = {', '.join(f'{v:.4g}' for v in new)}.")
+    return warnings, inserts, neighbour
+
+
+def estimate_windows(
+    energy_a,
+    energy_b,
+    start_a,
+    start_b,
+    *,
+    kT: float = 1.0,
+    seed: int = 0,
+    budget: int = 1_000_000,
+    windows: int | np.ndarray | list | None = None,
+    spacing: str = "gauss-legendre",
+    chains: int | None = None,
+    samples_per_window: int | None = None,
+    exchange: bool = False,
+    exchange_every: int = 10,
+    window_starts: str = "ends",
+    path: Path | None = None,
+    units: str = "energy units",
+    reference: dict | None = None,
+) -> Result:
+    """ΔF = F_B − F_A from equilibrium samples of a ladder of λ windows (MBAR headline).
+
+    Args:
+        energy_a, energy_b: JAX-traceable U(x) -> scalar, in the user's energy units.
+        start_a, start_b: configurations where sampling begins (same shape).
+        kT: thermal energy in the energies' units.
+        seed: integer seed; the same seed reproduces the same numbers.
+        budget: total energy evaluations (sampling of all windows + exchange + analysis),
+            split evenly: every window gets the same samples and the same sampling share.
+        windows, spacing: the ladder, see :func:`window_ladder` (default: 10 Gauss–Legendre
+            nodes plus both ends, 12 windows).
+        chains: sampler chains per window (default: from the budget share, 4 to 64).
+        samples_per_window: kept (decorrelated) samples per window; default from the budget.
+        exchange: Hamiltonian replica exchange between neighbouring windows in production.
+        exchange_every: sampler steps between exchange attempts.
+        window_starts: ``"ends"`` (windows with λ < 0.5 start from ``start_a``, the others
+            from ``start_b``) or ``"chain"`` (each window starts from a sample of the window
+            before it, going inwards from both ends).
+        path: a :class:`~fe_tool.path.Path` replacing the linear mixing.
+        units: name of the energy unit; reference: optional known ΔF ``{"delta_f", "source",
+            "tolerance"}`` in ``units``.
+
+    Returns:
+        :class:`~fe_tool.results.Result`; ``estimates``: ``mbar``, ``bar_ladder``,
+        ``ti_trapezoid`` and (Gauss–Legendre ladders) ``ti_gauss_legendre``; ``extras``:
+        ``lambdas``, ``free_energies`` (kT), ``overlap`` matrix, ``mean_derivative`` (kT),
+        ``suggested_windows`` and, with exchange, ``exchange_acceptance`` per pair.
+
+    Example:
+        >>> import jax.numpy as jnp
+        >>> r = estimate_windows(lambda x: 0.5 * jnp.sum(x**2), lambda x: 2.0 * jnp.sum((x - 1)**2),
+        ...                      jnp.zeros(3), jnp.ones(3), budget=200_000)   # ΔF = 1.5 ln 4 kT
+    """
+    t_start = time.perf_counter()
+    if not isinstance(budget, (int, np.integer)) or budget < 1:
+        raise ValueError(f"budget must be a positive integer, got {budget!r}")
+    if window_starts not in ("ends", "chain"):
+        raise ValueError(f"window_starts must be 'ends' or 'chain', got {window_starts!r}")
+    if reference is not None and "delta_f" not in reference:
+        raise ValueError("reference must be a mapping with at least 'delta_f' (and ideally 'source', 'tolerance')")
+    if chains is not None and chains < 4:
+        raise ValueError(f"chains must be at least 4 (chain agreement is measured between chains), got {chains}")
+    if exchange_every < 1:
+        raise ValueError(f"exchange_every must be a positive number of sampler steps, got {exchange_every}")
+    x_a, x_b, kT = _validate(energy_a, energy_b, start_a, start_b, kT)
+    path = path if path is not None else LinearPath(energy_a, energy_b, kT)
+    if windows is None:
+        # every window needs ~25 000 evaluations for warm-up, burn-in and a few hundred samples
+        total = int(np.clip(budget // 25_000, 4, DEFAULT_WINDOWS + 2))
+        windows = total - 2 if spacing == "gauss-legendre" else total
+    lams, gl_weights = window_ladder(windows, spacing)
+    count = lams.size
+    per_call = path.evaluations_per_point(1)
+    analysis_per_sample = path.evaluations_per_point(count)
+    derivative_free = isinstance(path, LinearPath)   # ∂u/∂λ = u_B − u_A comes from the ladder energies
+    if not derivative_free:
+        analysis_per_sample += path.evaluations_per_point(1)
+    share = budget / count
+    if chains is None:
+        chains = int(np.clip(share // (per_call * 2500), 4, 64))
+    overhead = chains * per_call * 600     # warm-up and the shortest burn-in of one window
+    if samples_per_window is None:
+        # half of the share is left to warm-up and burn-in; production keeps one sample per ~τ steps
+        samples_per_window = int((0.5 * share - overhead) // (per_call * ASSUMED_THINNING + analysis_per_sample))
+        samples_per_window = min(samples_per_window, 4096)
+    if samples_per_window < 16:
+        need = int(count * (overhead + 16 * (per_call * ASSUMED_THINNING + analysis_per_sample)))
+        raise ValueError(f"budget={budget} is too small for {count} windows with {chains} chains each: about {need} "
+                         "evaluations are needed for 16 samples per window; raise budget, use fewer windows or chains")
+    sampling_share = int(share - samples_per_window * analysis_per_sample)
+
+    key = jax.random.key(seed)
+    k_windows, k_exchange = jax.random.split(key)
+    window_keys = jax.random.split(k_windows, count)
+    timings: dict[str, float] = {}
+    cost: dict[str, int] = {"sampling": 0}
+    warnings: list[str] = []
+
+    # ---- sample every window
+    t0 = time.perf_counter()
+    sampled: list[StateSamples | None] = [None] * count
+    if window_starts == "ends":
+        order = list(range(count))
+    else:   # inwards from both ends, so each window starts next to a sampled neighbour
+        low = [k for k in range(count) if lams[k] < 0.5]
+        high = [k for k in range(count) if lams[k] >= 0.5][::-1]
+        order = low + high
+    for k in order:
+        if window_starts == "chain" and k not in (0, count - 1):
+            neighbour = k - 1 if lams[k] < 0.5 else k + 1
+            x0 = jnp.asarray(sampled[neighbour].samples[-1])
+        else:
+            x0 = x_a if lams[k] < 0.5 else x_b
+        # with exchange the sampler only equilibrates; production samples come from the exchange run
+        wanted = chains if exchange else samples_per_window
+        s = sample_state(window_keys[k], window_target(path, float(lams[k])), x0, samples=wanted,
+                         chains=chains, evaluation_budget=sampling_share, name=f"window {k} (λ = {lams[k]:.4g})")
+        sampled[k] = s
+        cost["sampling"] += s.evaluations
+        warnings.extend(s.warnings)
+    timings["sampling"] = time.perf_counter() - t0
+
+    # ---- optional replica exchange production (replaces the per-window production samples)
+    exchange_info: dict[str, Any] = {}
+    if exchange:
+        t0 = time.perf_counter()
+        if count < 2:
+            raise ValueError("exchange needs at least two windows")
+        starts = np.stack([s.samples[np.arange(chains) % len(s.samples)] for s in sampled])
+        stride = max(1, int(math.ceil(np.median([s.autocorrelation_time for s in sampled]))))
+        steps_per_sweep = max(exchange_every, 1)
+        # keep positions every ceil(τ/steps_per_sweep) sweeps so kept samples stay decorrelated
+        keep_every = max(1, int(math.ceil(stride / steps_per_sweep)))
+        sweep_cost = chains * per_call * (count * (steps_per_sweep + 1) + 2 * (count - 1))
+        left = budget - cost["sampling"]
+        per_kept_sweep = keep_every * sweep_cost + chains * count * analysis_per_sample
+        kept_sweeps = int(np.clip(left // per_kept_sweep, 4, math.ceil(4096 / chains)))
+        sweeps = kept_sweeps * keep_every
+        samples_per_window = kept_sweeps * chains
+        trace, swap_prob, step_acc = _exchange_jit(
+            path, k_exchange, jnp.asarray(starts), jnp.asarray(lams),
+            jnp.asarray([s.step_size for s in sampled]), jnp.asarray(np.stack([s.preconditioner for s in sampled])),
+            sweeps=sweeps, steps_per_sweep=steps_per_sweep)
+        trace = np.asarray(trace)[keep_every - 1::keep_every]          # (sweeps', K, C, ...)
+        kept = np.moveaxis(trace, 1, 0)                                # (K, sweeps', C, ...)
+        kept = kept.reshape((count, -1) + tuple(x_a.shape))[:, :samples_per_window]
+        for k in range(count):
+            sampled[k].samples = kept[k]
+        swap_prob = np.asarray(swap_prob)
+        pair_acceptance = np.nanmean(swap_prob, axis=(0, 2))
+        cost["exchange"] = int(sweeps * sweep_cost)
+        exchange_info = {"exchange_acceptance": pair_acceptance, "exchange_sweeps": sweeps,
+                         "exchange_steps_per_sweep": steps_per_sweep,
+                         "exchange_step_acceptance": np.asarray(step_acc).mean(axis=(0, 2))}
+        for k, a in enumerate(pair_acceptance):
+            if a < 0.05:
+                warnings.append(f"replica exchange between λ = {lams[k]:.4g} and λ = {lams[k + 1]:.4g} accepted only "
+                                f"{a:.1%} of swaps; the windows there are too far apart for exchange to help.")
+        timings["exchange"] = time.perf_counter() - t0
+
+    # ---- reduced energies of every sample at every window
+    t0 = time.perf_counter()
+    counts = np.array([len(s.samples) for s in sampled], dtype=np.int64)
+    pooled = np.concatenate([np.asarray(s.samples) for s in sampled])
+    reduced = _batched(_ladder_energies, path, pooled, jnp.asarray(lams)).T   # (K, N)
+    cost["analysis"] = int(pooled.shape[0] * path.evaluations_per_point(count))
+    edges = np.concatenate([[0], np.cumsum(counts)])
+    derivative = []
+    for k in range(count):
+        if derivative_free:
+            derivative.append(reduced[-1, edges[k]:edges[k + 1]] - reduced[0, edges[k]:edges[k + 1]])
+        else:
+            derivative.append(_batched(_lambda_derivatives, path, pooled[edges[k]:edges[k + 1]], jnp.asarray(lams[k])))
+    if not derivative_free:
+        cost["analysis"] += int(pooled.shape[0] * path.evaluations_per_point(1))
+    timings["energies"] = time.perf_counter() - t0
+
+    # ---- estimators
+    t0 = time.perf_counter()
+    flagged = False
+    finite = np.isfinite(reduced) | (reduced == np.inf)
+    if not np.all(finite):
+        reduced = np.where(np.isnan(reduced) | (reduced == -np.inf), np.inf, reduced)
+        warnings.append(f"{int((~finite).sum())} reduced energies were NaN or −inf and were treated as impossible "
+                        "configurations (+inf).")
+        flagged = True
+    multistate = mbar(reduced, counts)
+    estimates: dict[str, Estimate] = {"mbar": multistate.endpoint}
+    estimates["bar_ladder"] = neighbour_bar(reduced, counts)
+    inefficiency = [_statistical_inefficiency(d, s.chains - s.stuck_chains) for d, s in zip(derivative, sampled)]
+    means = np.array([float(np.mean(d)) for d in derivative])
+    errors = np.array([float(np.std(d, ddof=1) * math.sqrt(g / d.size)) for d, g in zip(derivative, inefficiency)])
+    estimates["ti_trapezoid"] = thermodynamic_integration(lams, means, errors, rule="trapezoid")
+    if gl_weights is not None:
+        estimates["ti_gauss_legendre"] = thermodynamic_integration(lams[1:-1], means[1:-1], errors[1:-1],
+                                                                   rule="gauss-legendre")
+    msgs, inserts, neighbour_overlap = _overlap_warnings(lams, multistate.overlap)
+    warnings.extend(msgs)
+    if msgs:
+        flagged = True
+    if "warning" in multistate.endpoint.details:
+        warnings.append("MBAR: " + multistate.endpoint.details["warning"])
+        flagged = True
+    if max(inefficiency) > 2.0:
+        worst = int(np.argmax(inefficiency))
+        warnings.append(f"window λ = {lams[worst]:.4g}: kept samples are still correlated (∂u/∂λ autocorrelation "
+                        f"{inefficiency[worst]:.1f} samples); TI errors are widened for it, MBAR/BAR errors may be "
+                        "too small.")
+    if not all(s.equilibrated for s in sampled):
+        flagged = True
+    if multistate.endpoint.is_finite:
+        headline, reason = "mbar", ("MBAR uses the samples of every window at once and is the minimum-variance "
+                                    f"estimator for them (smallest neighbour overlap {min(neighbour_overlap):.2f})")
+    else:
+        headline, reason = "bar_ladder", "MBAR did not give a finite answer; BAR between neighbouring windows shown"
+    head = estimates[headline]
+    for name, est in estimates.items():
+        if name != headline and est.is_finite and head.is_finite:
+            scale = math.hypot(est.stderr, head.stderr)
+            if scale > 0 and abs(est.delta_f - head.delta_f) > 4 * scale:
+                warnings.append(f"{name} ({est.delta_f:.3f} kT) differs from {headline} ({head.delta_f:.3f} kT) by "
+                                f"{abs(est.delta_f - head.delta_f) / scale:.1f} combined errors; for TI this "
+                                "usually means the λ grid is too coarse where ∂u/∂λ changes fast.")
+    timings["estimators"] = time.perf_counter() - t0
+    timings["total"] = time.perf_counter() - t_start
+
+    window_diagnostics = [{"lambda": float(l), **s.diagnostics(), "samples": int(len(s.samples)),
+                           "derivative_inefficiency": float(g)} for l, s, g in zip(lams, sampled, inefficiency)]
+    diagnostics = {
+        "sampling_a": sampled[0].diagnostics(), "sampling_b": sampled[-1].diagnostics(),
+        "windows": window_diagnostics, "neighbour_overlap": neighbour_overlap,
+        "smallest_neighbour_overlap": float(min(neighbour_overlap)),
+        "stuck_chains": int(sum(s.stuck_chains for s in sampled)),
+        "mbar_converged": bool(multistate.converged),
+    }
+    settings = {
+        "route": "windows", "windows": int(count), "spacing": spacing if not isinstance(windows, (list, np.ndarray)) else "explicit",
+        "samples_per_window": int(samples_per_window), "chains": int(chains), "budget": int(budget), "seed": seed,
+        "exchange": bool(exchange), "window_starts": window_starts, "path": path.description(),
+    }
+    extras = {
+        "lambdas": lams, "free_energies": multistate.free_energies, "overlap": multistate.overlap,
+        "mean_derivative": means, "stderr_derivative": errors, "suggested_windows": inserts, **exchange_info,
+    }
+    return Result(
+        delta_f=head.delta_f * kT, stderr=head.stderr * kT, estimator=headline, choice_reason=reason,
+        estimates={k: v.scaled(kT) for k, v in estimates.items()},
+        work_forward=np.zeros(0), work_reverse=np.zeros(0),
+        energy_evaluations=int(sum(cost.values())), cost=cost, kT=kT, units=units,
+        diagnostics=diagnostics, warnings=warnings, flagged=bool(flagged), settings=settings,
+        timings=timings, reference=reference, extras=extras,
+    )
