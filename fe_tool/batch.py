@@ -10,6 +10,7 @@ Batch file layout (TOML; every key is checked)::
     seed = 0
     settings = { budget = 150000 }         # fe_tool.estimate options
 
+    # pairs run and are tabulated in this order: every [[pair]], then every [[scan]] point
     [[pair]]                               # a system file
     name = "harmonic"
     system = "../systems/harmonic_3d.toml" # path relative to this file, or a bundled name
@@ -343,6 +344,7 @@ def _atomic_write(path: pathlib.Path, text: str) -> None:
             fh.write(text)
             fh.flush()
             os.fsync(fh.fileno())
+        os.chmod(tmp, 0o644)   # mkstemp makes 0600; tables are meant to be shared
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):

@@ -16,9 +16,10 @@ fixed-length blocks (one compiled ``lax.scan`` per block shape):
    in doubling windows;
 2. burn-in: blocks are run until the integrated autocorrelation time τ of the
    recorded observables (reduced energy; the coordinates for vector systems) is
-   small against the trace and the chains agree (split potential-scale reduction
-   below 1.05, Gelman & Rubin 1992 / Vehtari et al. 2021), or the budget share runs out;
-3. production: each chain is continued and sampled every ⌈τ⌉ steps.
+   below a tenth of the judged half of the trace and the chains agree (split potential-scale reduction
+   below 1.1, Gelman & Rubin 1992 / Vehtari et al. 2021), or the budget share runs out;
+3. production: each chain is continued and sampled every ⌈τ⌉ steps, as many samples
+   as the rest of the budget affords (up to the number asked for).
 
 Chains whose acceptance collapses (stuck in a steep tail) are excluded from the
 samples, counted and reported; their cost still counts.
@@ -40,6 +41,10 @@ from .types import Array, Configuration
 TARGET_ACCEPTANCE = 0.574
 BLOCK_STEPS = 50
 STUCK_ACCEPTANCE = 0.02
+EQUILIBRATION_TAUS = 10  # the judged second half of the burn-in must span this many autocorrelation times
+MIXING_LIMIT = 1.1  # split potential-scale reduction below which chains agree (Gelman et al., "Bayesian Data Analysis", classic threshold)
+BURN_IN_SHARE = 0.7  # of a call's budget; production sampling gets the rest
+MIN_SAMPLES = 64
 
 
 class ChainState(NamedTuple):
@@ -355,11 +360,11 @@ def sample_state(
             taus = [taus[0]] + [t * record for t in taus[1:]]
             tau = float(max(taus))
             rhat = max(split_mixing_statistic(t) for t in traces)
-            if half * BLOCK_STEPS >= 20 * tau and rhat < 1.05:
+            if half * BLOCK_STEPS >= EQUILIBRATION_TAUS * tau and rhat < MIXING_LIMIT:
                 equilibrated = True
                 break
-        production_cost = samples * max(1, math.ceil(tau if np.isfinite(tau) else 1)) * per_call
-        if spent + chains * BLOCK_STEPS * per_call + production_cost > evaluation_budget:
+        # burn-in may use BURN_IN_SHARE of the budget; the rest is for production
+        if spent + chains * BLOCK_STEPS * per_call > BURN_IN_SHARE * evaluation_budget:
             break
     burn_in = warmup_steps + len(energies) * BLOCK_STEPS
 
@@ -377,6 +382,13 @@ def sample_state(
 
     # ---- production: every chain continues, sampled every ceil(tau) steps
     stride = max(1, int(math.ceil(tau))) if np.isfinite(tau) else 1
+    # as many decorrelated samples as the rest of the budget affords (at least MIN_SAMPLES)
+    affordable = (evaluation_budget - spent) // (stride * per_call)
+    if affordable < samples:
+        samples = int(max(MIN_SAMPLES, affordable))
+        if samples < MIN_SAMPLES * 2:
+            warnings.append(f"{name}: the budget affords only {samples} decorrelated samples "
+                            f"(autocorrelation time {tau:.0f} steps); raise the budget for more trajectories.")
     per_chain = int(math.ceil(samples / len(healthy)))
     record_every = stride
     collected = []
@@ -399,7 +411,7 @@ def sample_state(
     if not equilibrated:
         warnings.append(
             f"{name}: sampling did not pass the equilibration checks within its share of the budget "
-            f"(autocorrelation time {tau:.0f} steps, chain agreement statistic {rhat:.2f}; want < 1.05). "
+            f"(autocorrelation time {tau:.0f} steps, chain agreement statistic {rhat:.2f}; want < {MIXING_LIMIT}). "
             "The end state may be multimodal or slow to mix: raise the budget or give a better start configuration.")
     if acceptance < 0.2:
         warnings.append(f"{name}: low sampler acceptance {acceptance:.2f}; the energy may be very rough.")

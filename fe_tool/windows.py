@@ -40,7 +40,9 @@ from .sampling import (
     ChainState,
     StateSamples,
     autocorrelation_time,
+    init_state,
     mala_kernel,
+    run_block,
     sample_state,
     window_target,
 )
@@ -137,6 +139,38 @@ def _statistical_inefficiency(values: np.ndarray, chains: int) -> float:
     if usable < 4 * chains:
         return 1.0
     return max(1.0, autocorrelation_time(values[:usable].reshape(-1, chains)))
+
+
+# --------------------------------------------------------------------------- production
+
+def _stride(s: StateSamples) -> int:
+    """Sampler steps between kept samples: the measured autocorrelation time, rounded up."""
+    tau = s.autocorrelation_time
+    return max(1, int(math.ceil(tau))) if math.isfinite(tau) else 1
+
+
+def _produce(key, target, s: StateSamples, samples: int) -> int:
+    """Continue the healthy chains of an equilibrated window and keep one sample every ⌈τ⌉ steps.
+
+    Replaces ``s.samples`` (chains interleaved, as :func:`~fe_tool.sampling.sample_state` lays them
+    out) and ``s.acceptance``; returns the energy evaluations spent.
+    """
+    healthy = s.chains - s.stuck_chains
+    # sample_state interleaves chains: its first `healthy` samples are one per healthy chain
+    starts = jnp.asarray(s.samples[:healthy])
+    states = jax.vmap(init_state, in_axes=(None, 0))(target, starts)
+    stride = _stride(s)
+    per_chain = int(math.ceil(samples / healthy))
+    _, _, _, acceptance, _, positions = run_block(
+        target, key, states, jnp.log(jnp.asarray(s.step_size, starts.dtype)), jnp.asarray(s.preconditioner),
+        0.0, stride * per_chain, stride)
+    # positions are (per_chain, chains, ...): flattening interleaves the chains, so any prefix draws from all
+    s.samples = np.asarray(positions).reshape((-1,) + starts.shape[1:])[:samples]
+    s.acceptance = float(np.mean(np.asarray(acceptance)))
+    s.effective_sample_size = float(samples)
+    spent = (healthy + healthy * stride * per_chain) * target.evaluations()
+    s.evaluations += spent
+    return int(spent)
 
 
 # --------------------------------------------------------------------------- replica exchange
@@ -309,18 +343,16 @@ def estimate_windows(
     if chains is None:
         chains = int(np.clip(share // (per_call * 2500), 4, 64))
     overhead = chains * per_call * 600     # warm-up and the shortest burn-in of one window
-    if samples_per_window is None:
-        # half of the share is left to warm-up and burn-in; production keeps one sample per ~τ steps
-        samples_per_window = int((0.5 * share - overhead) // (per_call * ASSUMED_THINNING + analysis_per_sample))
-        samples_per_window = min(samples_per_window, 4096)
-    if samples_per_window < 16:
-        need = int(count * (overhead + 16 * (per_call * ASSUMED_THINNING + analysis_per_sample)))
+    sample_cap = 4096 if samples_per_window is None else int(samples_per_window)
+    need = int(count * (overhead + 16 * (per_call * ASSUMED_THINNING + analysis_per_sample)))
+    if budget < need or sample_cap < 16:
         raise ValueError(f"budget={budget} is too small for {count} windows with {chains} chains each: about {need} "
                          "evaluations are needed for 16 samples per window; raise budget, use fewer windows or chains")
-    sampling_share = int(share - samples_per_window * analysis_per_sample)
+    # the sampler may spend this much per window on warm-up and burn-in (it stops once equilibrated)
+    equilibration_share = int(0.6 * share)
 
     key = jax.random.key(seed)
-    k_windows, k_exchange = jax.random.split(key)
+    k_windows, k_production, k_exchange = jax.random.split(key, 3)
     window_keys = jax.random.split(k_windows, count)
     timings: dict[str, float] = {}
     cost: dict[str, int] = {"sampling": 0}
@@ -341,13 +373,25 @@ def estimate_windows(
             x0 = jnp.asarray(sampled[neighbour].samples[-1])
         else:
             x0 = x_a if lams[k] < 0.5 else x_b
-        # with exchange the sampler only equilibrates; production samples come from the exchange run
-        wanted = chains if exchange else samples_per_window
-        s = sample_state(window_keys[k], window_target(path, float(lams[k])), x0, samples=wanted,
-                         chains=chains, evaluation_budget=sampling_share, name=f"window {k} (λ = {lams[k]:.4g})")
+        # the sampler equilibrates (one sample per chain); production is sized below from what is left
+        s = sample_state(window_keys[k], window_target(path, float(lams[k])), x0, samples=chains,
+                         chains=chains, evaluation_budget=equilibration_share, name=f"window {k} (λ = {lams[k]:.4g})")
         sampled[k] = s
         cost["sampling"] += s.evaluations
         warnings.extend(s.warnings)
+    if not exchange:
+        # equal samples in every window; a sample of window k costs ⌈τ_k⌉ sampler steps plus its analysis
+        strides = np.array([_stride(s) for s in sampled])
+        left = budget - cost["sampling"]
+        samples_per_window = int(min(sample_cap, left // np.sum(strides * per_call + analysis_per_sample)))
+        if samples_per_window < 16:
+            samples_per_window = 16
+            warnings.append("equilibrating the windows used nearly the whole budget; 16 samples per window were drawn "
+                            "anyway, so the budget is exceeded. Raise the budget or use fewer windows.")
+        production_keys = jax.random.split(k_production, count)
+        for k in range(count):
+            spent = _produce(production_keys[k], window_target(path, float(lams[k])), sampled[k], samples_per_window)
+            cost["sampling"] += spent
     timings["sampling"] = time.perf_counter() - t0
 
     # ---- optional replica exchange production (replaces the per-window production samples)
@@ -364,7 +408,7 @@ def estimate_windows(
         sweep_cost = chains * per_call * (count * (steps_per_sweep + 1) + 2 * (count - 1))
         left = budget - cost["sampling"]
         per_kept_sweep = keep_every * sweep_cost + chains * count * analysis_per_sample
-        kept_sweeps = int(np.clip(left // per_kept_sweep, 4, math.ceil(4096 / chains)))
+        kept_sweeps = int(np.clip(left // per_kept_sweep, 4, max(4, math.ceil(sample_cap / chains))))
         sweeps = kept_sweeps * keep_every
         samples_per_window = kept_sweeps * chains
         trace, swap_prob, step_acc = _exchange_jit(

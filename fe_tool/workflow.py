@@ -28,6 +28,7 @@ PILOT_TRAJECTORIES = 64
 PILOT_STEPS = 32
 SWITCH_BATCH = 128
 CONTROL_MODES = ("none", "learned", "auto")
+SAMPLING_SHARE = 0.3  # of the budget, at most, for each end state
 DIVERGED_WORK = 1e6  # kT; a larger |work| means the Langevin integration blew up
 
 
@@ -272,7 +273,7 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
                 raise ValueError(f"switching_steps={opts.switching_steps} with trajectories={opts.trajectories} needs "
                                  f"{switching_cost} evaluations for switching alone plus ~{minimum_sampling + pilot_cost} for sampling and pilot, "
                                  f"more than budget={budget}; lower one of them or raise the budget")
-    sampling_share = (budget * 0.2 if budget is not None else 10 * minimum_sampling)
+    sampling_share = (budget * SAMPLING_SHARE if budget is not None else 10 * minimum_sampling)
     if opts.schedule is not None and not isinstance(opts.schedule, str) and opts.switching_steps is None:
         raise ValueError("an explicit λ array as schedule needs switching_steps = len(schedule) − 1")
     if isinstance(opts.schedule, str):
