@@ -132,3 +132,30 @@ def plan_protocol(points: list[PilotPoint], *, remaining: int, per_point: int, a
         best_plan = Plan(int(k), float(s), int(t), predicted_hysteresis(model, k, s), float("nan"),
                          "budget too small for the preferred number of trajectories")
     return best_plan
+
+
+def length_profile(lams: np.ndarray, increment_variance: np.ndarray, floor: float = 0.1) -> np.ndarray:
+    """Normalised cumulative thermodynamic length L(λ_k) ∈ [0, 1] on the pilot grid ``lams``.
+
+    For small steps the work variance of step k is ≈ Δλ_k² g(λ), with g the
+    thermodynamic metric (the variance of ∂u/∂λ), so Σ_k √Var_k approximates the
+    thermodynamic length ∫ √g dλ; schedules equally spaced in it keep the per-step
+    dissipation constant, which minimises total dissipation for slow switching
+    (Crooks 2007, PRL 99, 100602; Sivak & Crooks 2012, PRL 108, 190602).  A ``floor``
+    share of uniform spacing keeps every region of λ visited.
+    """
+    steps = np.sqrt(np.clip(np.nan_to_num(increment_variance, nan=0.0, posinf=0.0), 0.0, None))
+    total = steps.sum()
+    if not np.isfinite(total) or total <= 0:
+        return np.asarray(lams, dtype=np.float64)
+    density = (1.0 - floor) * steps / total + floor * np.diff(lams)
+    cumulative = np.concatenate([[0.0], np.cumsum(density)])
+    return cumulative / cumulative[-1]
+
+
+def schedule_from_profile(lams: np.ndarray, profile: np.ndarray, steps: int) -> np.ndarray:
+    """λ_0 = 0 < … < λ_K = 1 equally spaced in the length ``profile`` (piecewise-linear in λ)."""
+    targets = np.linspace(0.0, 1.0, steps + 1)
+    out = np.interp(targets, profile, lams)
+    out[0], out[-1] = 0.0, 1.0
+    return np.maximum.accumulate(out)

@@ -18,7 +18,7 @@ import numpy as np
 from . import diagnostics as diag
 from .estimators import bar, crooks_gaussian, jarzynski, work_overlap
 from .path import LinearPath, Path, make_schedule
-from .planning import PILOT_SCALES, PilotPoint, plan_protocol
+from .planning import PILOT_SCALES, PilotPoint, length_profile, plan_protocol, schedule_from_profile
 from .results import Result
 from .sampling import StateSamples, end_target, sample_state
 from .switching import run_in_batches, switching_evaluations
@@ -51,7 +51,9 @@ class Options:
         switching_steps: steps per trajectory K; ``None`` chooses K from a pilot run so the
             work spread is about 1 kT.
         trajectories: trajectories per direction; ``None`` spends the rest of the budget.
-        schedule: ``"linear"``, ``"cosine"``, ``"power"`` or an explicit λ array (K+1 values).
+        schedule: ``"adaptive"`` (λ spaced evenly in thermodynamic length measured by a pilot
+            run, see :func:`fe_tool.planning.length_profile`), ``"linear"``, ``"cosine"``,
+            ``"power"`` or an explicit λ array (K+1 values).
         step_scale: switching step relative to the end-state samplers' adapted step;
             ``None`` chooses it (with K) from pilot runs, see :mod:`fe_tool.planning`.
         chains: parallel sampling chains per end state.
@@ -74,7 +76,7 @@ class Options:
     budget: int | None = None
     switching_steps: int | None = None
     trajectories: int | None = None
-    schedule: Any = "linear"
+    schedule: Any = "adaptive"
     step_scale: float | None = None
     chains: int = 64
     precondition: bool | None = None
@@ -205,6 +207,28 @@ def _switching_step_sizes(lams: np.ndarray, samples_a: StateSamples, samples_b: 
     return scale * np.exp(log_eps)
 
 
+def _schedule_pilot(path, key, samples_a, samples_b, precision_a, precision_b, cost, scales):
+    """Pilot on the linear schedule; return (λ grid, normalised length profile) for an adaptive schedule."""
+    lams0 = make_schedule("linear", PILOT_STEPS)
+    n = min(PILOT_TRAJECTORIES, len(samples_a.samples), len(samples_b.samples))
+    variance = np.full(PILOT_STEPS, np.nan)
+    # a moderate step first (the largest pilot step is the one most likely to blow up), then smaller
+    for scale in [s for s in scales if s <= 0.5] or list(scales):
+        eps0 = _switching_step_sizes(lams0, samples_a, samples_b, scale)
+        kf, kr, key = jax.random.split(key, 3)
+        wf, inc_f, _ = run_in_batches(path, None, kf, samples_a.samples[:n], lams0, eps0, precision_a, precision_b, "forward", n)
+        wr, inc_r, _ = run_in_batches(path, None, kr, samples_b.samples[:n], lams0, eps0, precision_a, precision_b, "reverse", n)
+        cost["pilot"] += 2 * switching_evaluations(path, n, PILOT_STEPS)
+        ok_f, ok_r = ~mark_diverged(wf), ~mark_diverged(wr)
+        if ok_f.sum() > 8 and ok_r.sum() > 8:
+            # reverse increments run from λ = 1 to 0: flip them onto the forward grid
+            variance = 0.5 * (inc_f[ok_f].var(axis=0) + inc_r[ok_r][:, ::-1].var(axis=0))
+            break
+    if not np.all(np.isfinite(variance)):
+        return lams0, lams0.copy()
+    return lams0, length_profile(lams0, variance)
+
+
 def _prepare_control(opts, key, path, samples_a, samples_b, lams, step_sizes, precision_a, precision_b, remaining,
                      probe):
     """Train, decide on or reuse a control; returns (drift, lams, step_sizes, report, outcome-or-None)."""
@@ -262,7 +286,7 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
     minimum_sampling = 2 * chains * 400 * path.end_evaluations()
     if budget is not None:
         pilot_cost = 0 if (opts.step_scale is not None and opts.switching_steps is not None) else \
-            len(PILOT_SCALES) * 2 * switching_evaluations(path, PILOT_TRAJECTORIES, PILOT_STEPS)
+            (len(PILOT_SCALES) + 1) * 2 * switching_evaluations(path, PILOT_TRAJECTORIES, PILOT_STEPS)
         minimum = minimum_sampling + pilot_cost + 2 * switching_evaluations(path, 64, 16)
         if budget < minimum:
             raise ValueError(f"budget={budget} is too small: end-state sampling with {chains} chains and a minimal "
@@ -276,7 +300,7 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
     sampling_share = (budget * SAMPLING_SHARE if budget is not None else 10 * minimum_sampling)
     if opts.schedule is not None and not isinstance(opts.schedule, str) and opts.switching_steps is None:
         raise ValueError("an explicit λ array as schedule needs switching_steps = len(schedule) − 1")
-    if isinstance(opts.schedule, str):
+    if isinstance(opts.schedule, str) and opts.schedule != "adaptive":
         make_schedule(opts.schedule, 2)  # name check before the long part
 
     key = jax.random.key(seed)
@@ -307,8 +331,14 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
     points: list[PilotPoint] = []
     scales = PILOT_SCALES if opts.step_scale is None else (opts.step_scale,)
     need_pilot = opts.step_scale is None or opts.switching_steps is None
+    schedule_for = (lambda k: make_schedule(opts.schedule, k))
+    k_shape, k_pilot = jax.random.split(k_pilot)
+    if opts.schedule == "adaptive":
+        profile_lams, profile = _schedule_pilot(path, k_shape, samples_a, samples_b, precision_a, precision_b, cost,
+                                                scales)
+        schedule_for = (lambda k: schedule_from_profile(profile_lams, profile, k))
     if need_pilot:
-        lams0 = make_schedule(opts.schedule if isinstance(opts.schedule, str) else "linear", PILOT_STEPS)
+        lams0 = schedule_for(PILOT_STEPS)
         n = min(PILOT_TRAJECTORIES, len(samples_a.samples), len(samples_b.samples))
         for scale in scales:
             eps0 = _switching_step_sizes(lams0, samples_a, samples_b, scale)
@@ -321,7 +351,7 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
             hysteresis = float(ok_f.mean() + ok_r.mean()) if ok_f.size > 2 and ok_r.size > 2 else float("inf")
             spread = float(max(ok_f.std(), ok_r.std())) if ok_f.size > 2 and ok_r.size > 2 else float("inf")
             points.append(PilotPoint(PILOT_STEPS, scale, hysteresis, spread, int(bad_f.sum() + bad_r.sum())))
-        spent += cost["pilot"]
+    spent += cost["pilot"]
     remaining = (budget - spent) if budget is not None else 10**15
     available = min(len(samples_a.samples), len(samples_b.samples))
     plan = plan_protocol(points, remaining=remaining, per_point=per_point, available=available,
@@ -330,7 +360,7 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
         warnings.append("every pilot switching run had diverging trajectories, even at 1/16 of the sampler's step; "
                         "the energy may be too steep for Langevin switching.")
     steps, trajectories, step_scale = plan.steps, min(plan.trajectories, available), plan.scale
-    lams = make_schedule(opts.schedule, steps)
+    lams = schedule_for(steps)
     step_sizes = _switching_step_sizes(lams, samples_a, samples_b, step_scale)
     timings["pilot"] = time.perf_counter() - t0
 
