@@ -126,17 +126,26 @@ def run_block(target: Target, key, states: ChainState, log_step, preconditioner,
     """
     kernel = jax.vmap(mala_kernel(target), in_axes=(0, 0, None, None))
     chains = states.energy.shape[0]
+    every = max(record_every, 1)
+    if steps % every:
+        raise ValueError(f"steps ({steps}) must be a multiple of record_every ({record_every})")
 
-    def body(carry, key_step):
+    def step(carry, key_step):
         states, log_step = carry
         keys = jax.random.split(key_step, chains)
         states, info = kernel(keys, states, jnp.exp(log_step), preconditioner)
         log_step = log_step + adapt_rate * (jnp.mean(info.acceptance) - TARGET_ACCEPTANCE)
-        return (states, log_step), (info.acceptance, info.energy, log_step, states.position)
+        return (states, log_step), (info.acceptance, info.energy, log_step)
 
-    keys = jax.random.split(key, steps)
-    (states, log_step_end), (acc, energies, log_steps, positions) = jax.lax.scan(body, (states, log_step), keys)
-    recorded = positions[record_every - 1 :: record_every] if record_every else None
+    def record(carry, keys):
+        # inner scan between two recordings: only every `every`-th position is kept in memory
+        carry, outputs = jax.lax.scan(step, carry, keys)
+        return carry, (outputs, carry[0].position if record_every else None)
+
+    keys = jax.random.split(key, steps).reshape((steps // every, every) + key.shape)
+    (states, log_step_end), ((acc, energies, log_steps), recorded) = jax.lax.scan(record, (states, log_step), keys)
+    flat = lambda a: a.reshape((steps,) + a.shape[2:])  # noqa: E731
+    acc, energies, log_steps = flat(acc), flat(energies), flat(log_steps)
     return states, log_step_end, jnp.mean(log_steps), jnp.mean(acc, axis=0), energies, recorded
 
 
