@@ -202,6 +202,18 @@ def main(argv=None):
         cells = "  ".join(f"{r['rmse'][f'none@{k}']:8.4f} / {r['rmse'][f'learned@{k}']:7.4f}    " for k in steps_list)
         print(f"{r['system']:<13} {r['spread_before_k16']:7.3f} → {r['spread_after_k16']:6.3f} ({r['spread_before_k16'] / r['spread_after_k16']:4.1f}×)"
               f"  {r['training_evaluations_mean']:10,.0f}  {cells}")
+    # the targets of the issue, reported as met or missed
+    by_name = {r["system"]: r for r in results}
+    for name, factor in (("harmonic50", 3.0), ("double_well", 2.0)):
+        if name in by_name:
+            r = by_name[name]
+            cut = r["spread_before_k16"] / r["spread_after_k16"]
+            print(f"target: K=16 forward work spread cut ≥{factor:.0f}× on {name}: {cut:.1f}× -> "
+                  f"{'met' if cut >= factor else 'MISSED'}")
+    for k in steps_list:
+        wins = [r["system"] for r in results if r["rmse"][f"learned@{k}"] <= 0.5 * r["rmse"][f"none@{k}"]]
+        print(f"target: K={k}: learned RMSE ≤ ½ uncontrolled on ≥2 of {len(results)} systems: {len(wins)} "
+              f"({', '.join(wins) or 'none'}) -> {'met' if len(wins) >= 2 else 'MISSED'}")
     if args.json:
         with open(args.json, "w") as f:
             json.dump({"budget": args.budget, "seeds": seeds, "objective": args.objective, "results": results}, f, indent=1)

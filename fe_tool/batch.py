@@ -26,6 +26,8 @@ Batch file layout (TOML; every key is checked)::
     factory = "examples.restraint_scan:probe_restraint"
     parameters = { dimensions = 2 }        # fixed keywords
     vary = { stiffness = [0.5, 1.0, 4.0] } # Cartesian product of the lists
+    seeds = [0, 1]                         # optional: repeat every point with these seeds
+                                           # (usable as {seed} in the name template)
 
 A factory ``module:function`` is called with ``parameters`` as keywords and returns
 ``(energy_a, energy_b, start_a, start_b, kT)`` or the same with a sixth item, a dict of
@@ -73,7 +75,7 @@ COLUMNS = ("name", "hash", "delta_f", "stderr", "units", "estimator", "flagged",
 TOP_KEYS = {"name", "python_path", "defaults", "pair", "scan"}
 DEFAULT_KEYS = {"seed", "settings"}
 PAIR_KEYS = {"name", "system", "factory", "parameters", "settings", "seed"}
-SCAN_KEYS = {"name", "factory", "parameters", "settings", "seed", "vary"}
+SCAN_KEYS = {"name", "factory", "parameters", "settings", "seed", "seeds", "vary"}
 
 
 class BatchError(ValueError):
@@ -259,17 +261,23 @@ def load_batch(batch_file_or_spec: Any) -> tuple[str, list[PairTask]]:
         vary = scan.get("vary")
         if not isinstance(vary, dict) or not vary or not all(isinstance(v, list) and v for v in vary.values()):
             raise BatchError(f"{where}.vary: expected a table of non-empty lists, e.g. vary = {{ stiffness = [1, 2] }}")
+        seeds = scan.get("seeds", [None])
+        if not isinstance(seeds, list) or not seeds or not all(s is None or isinstance(s, int) for s in seeds):
+            raise BatchError(f"{where}.seeds: expected a non-empty list of integers, got {seeds!r}")
         template = scan.get("name", "")
         keys = list(vary)
-        for values in itertools.product(*(vary[k] for k in keys)):
+        for values, seed in itertools.product(itertools.product(*(vary[k] for k in keys)), seeds):
             point = dict(zip(keys, values))
+            fill = point if seed is None else {**point, "seed": seed}
             try:
-                name = template.format(**point)
+                name = template.format(**fill)
             except (KeyError, IndexError, ValueError) as err:
-                raise BatchError(f"{where}.name: template {template!r} cannot be filled from {point}: {err}") from err
-            entry = {k: v for k, v in scan.items() if k != "vary"}
+                raise BatchError(f"{where}.name: template {template!r} cannot be filled from {fill}: {err}") from err
+            entry = {k: v for k, v in scan.items() if k not in ("vary", "seeds")}
             entry["name"] = name
             entry["parameters"] = {**scan.get("parameters", {}), **point}
+            if seed is not None:
+                entry["seed"] = seed
             tasks.append(_make_task(entry, where, defaults, base, python_path))
     if not tasks:
         raise BatchError("the batch lists no pairs; add [[pair]] or [[scan]] entries")
@@ -395,13 +403,20 @@ def read_table(results_dir: str | os.PathLike) -> list[dict[str, Any]]:
 
 # ------------------------------------------------------------------ executors
 
+def _quiet_worker() -> None:
+    """Worker start-up: no progress bars.  (XLA thread flags are left alone on purpose: they are
+    part of the compilation-cache key, and changing them made every worker compile afresh.)"""
+    os.environ["FE_TOOL_PROGRESS"] = "0"
+
+
 def _local_results(tasks: list[PairTask], workers: int, full_dir: str):
     if workers == 1:
         for task in tasks:
             yield task, run_pair(task, full_dir)
         return
     context = multiprocessing.get_context("spawn")   # never fork a process that has started JAX
-    with concurrent.futures.ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
+    with concurrent.futures.ProcessPoolExecutor(max_workers=workers, mp_context=context,
+                                                initializer=_quiet_worker) as pool:
         futures = {pool.submit(run_pair, task, full_dir): task for task in tasks}
         for future in concurrent.futures.as_completed(futures):
             task = futures[future]
@@ -461,6 +476,11 @@ def run_batch(batch_file_or_spec: Any, results_dir: str | os.PathLike, *, worker
 
     Returns:
         :class:`BatchSummary`; ``summary.exit_code`` is 0 only when every pair succeeded.
+
+    Local workers are started with ``spawn`` (forking a process that has started JAX is
+    unsafe), so a script calling this with ``workers > 1`` needs the usual
+    ``if __name__ == "__main__":`` guard.  Do not run the same batch into the same
+    ``results_dir`` from two processes at once (the tables are not locked).
 
     Example:
         >>> summary = run_batch("batches/probe_restraint_scan.toml", "scan-results", workers=2)
@@ -526,7 +546,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("batch", help="the batch TOML file")
     p.add_argument("--results", metavar="DIR", help="results folder (default: BATCHNAME-results beside the batch file)")
     p.add_argument("--workers", type=int, help="local worker processes (default: CPU cores)")
-    p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler address, e.g. tcp://10.0.0.5:8786")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler address, e.g. tcp://127.0.0.1:8786")
     p.add_argument("--no-retry", action="store_true", help="keep failed pairs failed instead of running them again")
     p.add_argument("--plot", action="store_true", help="also write batch_summary.png into the results folder")
     p.add_argument("--quiet", action="store_true", help="no progress bar")

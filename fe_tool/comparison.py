@@ -36,12 +36,15 @@ class RouteCall:
     cache: dict
 
 
-def _switching(call: RouteCall) -> tuple[float, float, int]:
-    from .workflow import estimate
+def _switching_with(control: str, option_key: str) -> Callable[[RouteCall], tuple[float, float, int]]:
+    def route(call: RouteCall) -> tuple[float, float, int]:
+        from .workflow import estimate
 
-    r = estimate(call.energy_a, call.energy_b, call.start_a, call.start_b, kT=call.kT, seed=call.seed,
-                 budget=call.budget, **call.options.get("switching", {}))
-    return r.delta_f, r.stderr, r.energy_evaluations
+        options = {"control": control, **call.options.get(option_key, {})}
+        r = estimate(call.energy_a, call.energy_b, call.start_a, call.start_b, kT=call.kT, seed=call.seed,
+                     budget=call.budget, **options)
+        return r.delta_f, r.stderr, r.energy_evaluations
+    return route
 
 
 def _windows_result(call: RouteCall):
@@ -69,7 +72,9 @@ def _windows_ti(call: RouteCall) -> tuple[float, float, int]:
 
 
 ROUTES: dict[str, Callable[[RouteCall], tuple[float, float, int]]] = {
-    "switching": _switching,
+    "switching": _switching_with("none", "switching"),
+    "switching-learned": _switching_with("learned", "switching-learned"),
+    "switching-auto": _switching_with("auto", "switching-auto"),
     "windows-mbar": _windows_estimate("mbar"),
     "windows-bar": _windows_estimate("bar_ladder"),
     "windows-ti": _windows_ti,

@@ -65,6 +65,9 @@ class System:
     reference: dict | None
     settings: dict[str, Any]
     source: str = ""
+    path: Any = None  # a fe_tool.path.Path for particle systems (replaces linear mixing)
+    unit_system: str = ""  # "kJ/mol-nm-K" or "reduced" for particle systems; "" for field files
+    particles: dict[str, Any] | None = None  # types, box and counts of a particle system (for reports)
 
     def estimate(self, **overrides):
         """Run :func:`fe_tool.estimate` with the file's settings, updated by ``overrides``."""
@@ -74,7 +77,9 @@ class System:
         seed = options.pop("seed", 0)
         unit_label = "kT" if self.units == "reduced" and self.kT == 1.0 else self.units
         if self.units == "reduced" and self.kT != 1.0:
-            unit_label = "reduced energy units"
+            unit_label = "ε (reduced LJ units)" if self.unit_system == "reduced" else "reduced energy units"
+        if self.path is not None:
+            options.setdefault("path", self.path)
         options.setdefault("units", unit_label)
         if self.reference is not None:
             options.setdefault("reference", self.reference)
@@ -189,8 +194,32 @@ def load_system(path: str | os.PathLike) -> System:
     return parse_system(data, source=str(path))
 
 
+def _reference_and_settings(data: dict) -> tuple[dict | None, dict]:
+    """The optional [reference] (ΔF in the file's energy unit) and [settings] (estimate options)."""
+    reference = None
+    if "reference" in data:
+        ref = data["reference"]
+        if not isinstance(ref, dict):
+            _fail("reference", "a table with delta_f, source and tolerance", ref)
+        _check_keys(ref, {"delta_f", "source", "tolerance"}, "reference")
+        reference = {
+            "delta_f": _number(ref, "delta_f", "reference"),
+            "source": str(ref.get("source", "not given")),
+            "tolerance": _number(ref, "tolerance", "reference", default=float("nan")),
+        }
+    settings = data.get("settings", {})
+    if not isinstance(settings, dict):
+        _fail("settings", "a table of estimate() options", settings)
+    from .workflow import OPTION_NAMES
+
+    _check_keys(settings, set(OPTION_NAMES) | {"seed"}, "settings")
+    return reference, dict(settings)
+
+
 def parse_system(data: dict, source: str = "<dict>") -> System:
     """Validate an already-parsed system description (see the module docstring)."""
+    if "particles" in data:
+        return _parse_particle_system(data, source)
     _check_keys(data, TOP_KEYS, "top level")
     units = data.get("units", "reduced")
     if units not in UNIT_NAMES:
@@ -211,28 +240,463 @@ def parse_system(data: dict, source: str = "<dict>") -> System:
             raise SystemFileError(f"{end}: missing; a system file needs tables [end_a] and [end_b]")
     energy_a, start_a = _end_state(data["end_a"], "end_a", 1.0)
     energy_b, start_b = _end_state(data["end_b"], "end_b", 1.0, dim=start_a.size)
-    reference = None
-    if "reference" in data:
-        ref = data["reference"]
-        if not isinstance(ref, dict):
-            _fail("reference", "a table with delta_f, source and tolerance", ref)
-        _check_keys(ref, {"delta_f", "source", "tolerance"}, "reference")
-        reference = {
-            "delta_f": _number(ref, "delta_f", "reference"),
-            "source": str(ref.get("source", "not given")),
-            "tolerance": _number(ref, "tolerance", "reference", default=float("nan")),
-        }
-    settings = data.get("settings", {})
-    if not isinstance(settings, dict):
-        _fail("settings", "a table of estimate() options", settings)
-    from .workflow import OPTION_NAMES
-
-    _check_keys(settings, set(OPTION_NAMES) | {"seed"}, "settings")
+    reference, settings = _reference_and_settings(data)
     return System(
         name=str(data.get("name", pathlib.Path(source).stem)),
         description=str(data.get("description", "")),
         energy_a=energy_a, energy_b=energy_b, start_a=start_a, start_b=start_b,
-        kT=kT, units=units, reference=reference, settings=dict(settings), source=source,
+        kT=kT, units=units, reference=reference, settings=settings, source=source,
+    )
+
+
+# ------------------------------------------------------------------ particle systems
+
+PARTICLE_TOP_KEYS = {"name", "description", "units", "kT", "temperature", "particles", "box", "types",
+                     "nonbonded", "topology", "restraints", "change", "reference", "settings"}
+PARTICLE_UNIT_SYSTEMS = ("kJ/mol-nm-K", "reduced")
+GROUP_STATES = ("both", "a", "b")
+TORSION_FORMS = ("ryckaert_bellemans", "periodic")
+RESTRAINT_FORMS = ("position", "distance")
+
+
+def _integer_rows(value: Any, key: str, width: int, n: int) -> np.ndarray:
+    """(m, width) particle indices in [0, n)."""
+    try:
+        arr = np.asarray(value)
+    except (TypeError, ValueError):
+        arr = np.asarray([])
+    if width == 1 and arr.ndim == 1:
+        arr = arr[:, None]
+    if arr.ndim != 2 or arr.shape[1] != width or arr.size == 0 or arr.dtype.kind not in "iu":
+        shape = "a list of particle indices" if width == 1 else f"a list of [{', '.join('i j k l'.split()[:width])}] index rows"
+        _fail(key, f"{shape} (integers, 0-based)", value)
+    if arr.min() < 0 or arr.max() >= n:
+        _fail(key, f"particle indices from 0 to {n - 1}", value)
+    for row in arr:
+        if len(set(row.tolist())) != width:
+            _fail(key, "distinct particles within each row", row.tolist())
+    return arr.astype(np.int32)
+
+
+def _boolean(table: dict, key: str, where: str, default: bool) -> bool:
+    value = table.get(key, default)
+    if not isinstance(value, bool):
+        _fail(f"{where}.{key}", "true or false", value)
+    return value
+
+
+def _string(table: dict, key: str, where: str, choices: tuple, default: str | None = None) -> str:
+    value = table.get(key, default)
+    if value not in choices:
+        _fail(f"{where}.{key}", f"one of {list(choices)}" + ("" if default is None else f" (default {default!r})"), value)
+    return value
+
+
+def _per_row(table: dict, key: str, where: str, rows: int, positive: bool = False, default: Any = None) -> np.ndarray:
+    """A number (shared by all rows) or one number per row."""
+    if key not in table and default is None:
+        _fail(f"{where}.{key}", "a number or one number per row (this key is required)", None)
+    value = table.get(key, default)
+    arr = _vector({key: value}, key, where)
+    if arr.size == 1:
+        arr = np.full(rows, arr[0])
+    if arr.size != rows:
+        _fail(f"{where}.{key}", f"one number or {rows} numbers (one per row of atoms)", value)
+    if positive and np.any(arr <= 0):
+        _fail(f"{where}.{key}", "positive numbers", value)
+    return arr
+
+
+def read_xyz(path: pathlib.Path, key: str = "particles.file") -> tuple[list[str], np.ndarray]:
+    """Types and (n, 3) positions from an XYZ file: a count line, a comment line, then
+    ``type x y z`` per particle (lengths in the system file's length unit)."""
+    if not path.exists():
+        _fail(key, "an existing XYZ file (path relative to the system file)", str(path))
+    lines = path.read_text().splitlines()
+    try:
+        count = int(lines[0].split()[0])
+    except (IndexError, ValueError):
+        _fail(key, "an XYZ file whose first line is the particle count", lines[:1])
+    if len(lines) < count + 2:
+        _fail(key, f"{count} particle lines after the comment line (XYZ format)", f"{len(lines) - 2} lines")
+    types, positions = [], []
+    for number, line in enumerate(lines[2:count + 2], start=3):
+        fields_ = line.split()
+        try:
+            if len(fields_) < 4:
+                raise ValueError
+            positions.append([float(v) for v in fields_[1:4]])
+        except ValueError:
+            _fail(f"{key} line {number}", "'type x y z'", line)
+        types.append(fields_[0])
+    return types, np.asarray(positions, dtype=np.float64)
+
+
+def _particles(data: dict, folder: pathlib.Path) -> tuple[list[str], np.ndarray]:
+    table = data["particles"]
+    if not isinstance(table, dict):
+        _fail("particles", "a table with 'file' (XYZ) or 'types' and 'positions'", table)
+    _check_keys(table, {"file", "types", "positions"}, "particles")
+    if "file" in table:
+        if "positions" in table or "types" in table:
+            _fail("particles", "either 'file' or inline 'types' and 'positions', not both", sorted(table))
+        if not isinstance(table["file"], str):
+            _fail("particles.file", "a file name (string)", table["file"])
+        return read_xyz(folder / table["file"])
+    for key in ("types", "positions"):
+        if key not in table:
+            _fail(f"particles.{key}", "a list (this key is required without 'file')", None)
+    types = table["types"]
+    if not isinstance(types, list) or not all(isinstance(t, str) for t in types) or not types:
+        _fail("particles.types", "a list of type names (strings)", types)
+    try:
+        positions = np.asarray(table["positions"], dtype=np.float64)
+    except (TypeError, ValueError):
+        _fail("particles.positions", "a list of [x, y, z] rows", table["positions"])
+    if positions.shape != (len(types), 3) or not np.all(np.isfinite(positions)):
+        _fail("particles.positions", f"{len(types)} rows of [x, y, z] (one per entry of particles.types)",
+              table["positions"])
+    return list(types), positions
+
+
+class _Group:
+    """One named bonded/restraint group: its spec, the builder and its end-state membership."""
+
+    def __init__(self, kind: str, spec: dict, where: str, build: Callable[[dict, str], Any]):
+        self.kind, self.spec, self.where, self.build = kind, spec, where, build
+        self.name = spec.get("name", where.replace("[", "_").replace("]", "").replace(".", "_"))
+        if not isinstance(self.name, str):
+            _fail(f"{where}.name", "a string", self.name)
+        self.state = _string(spec, "state", where, GROUP_STATES, "both")
+        self.term_a = build(spec, where)
+        self.term_b = None
+
+
+def _bonds_builder(n: int):
+    from .energy import HarmonicBonds
+
+    def build(spec, where):
+        _check_keys(spec, {"atoms", "length", "force_constant", "name", "state"}, where)
+        atoms = _integer_rows(spec.get("atoms"), f"{where}.atoms", 2, n)
+        return HarmonicBonds(bonds=jnp.asarray(atoms), lengths=jnp.asarray(_per_row(spec, "length", where, len(atoms), True)),
+                             force_constants=jnp.asarray(_per_row(spec, "force_constant", where, len(atoms))),
+                             name=spec.get("name", where))
+    return build
+
+
+def _angles_builder(n: int):
+    from .energy import HarmonicAngles
+
+    def build(spec, where):
+        _check_keys(spec, {"atoms", "angle", "force_constant", "name", "state"}, where)
+        atoms = _integer_rows(spec.get("atoms"), f"{where}.atoms", 3, n)
+        angle = _per_row(spec, "angle", where, len(atoms))
+        if np.any((angle <= 0) | (angle > 180)):
+            _fail(f"{where}.angle", "equilibrium angles in degrees, in (0, 180]", spec.get("angle"))
+        return HarmonicAngles(angles=jnp.asarray(atoms), equilibrium_angles=jnp.asarray(np.radians(angle)),
+                              force_constants=jnp.asarray(_per_row(spec, "force_constant", where, len(atoms))),
+                              name=spec.get("name", where))
+    return build
+
+
+def _torsions_builder(n: int):
+    from .energy import PeriodicTorsions, RyckaertBellemansTorsions
+
+    def build(spec, where):
+        form = _string(spec, "form", where, TORSION_FORMS)
+        atoms = _integer_rows(spec.get("atoms"), f"{where}.atoms", 4, n)
+        name = spec.get("name", where)
+        if form == "ryckaert_bellemans":
+            _check_keys(spec, {"atoms", "form", "coefficients", "name", "state"}, where)
+            coefficients = _vector(spec, "coefficients", where)
+            if not 1 <= coefficients.size <= 8:
+                _fail(f"{where}.coefficients", "1 to 8 coefficients C0, C1, … (energy units)", spec.get("coefficients"))
+            return RyckaertBellemansTorsions(torsions=jnp.asarray(atoms), coefficients=jnp.asarray(coefficients),
+                                             name=name)
+        _check_keys(spec, {"atoms", "form", "force_constants", "multiplicities", "phases", "name", "state"}, where)
+        k = _vector(spec, "force_constants", where)
+        m = _vector(spec, "multiplicities", where, k.size)
+        if np.any(m != np.round(m)) or np.any(m < 1):
+            _fail(f"{where}.multiplicities", "positive whole numbers", spec.get("multiplicities"))
+        phases = _vector(spec, "phases", where, k.size, default=np.zeros(k.size))
+        rows = len(atoms)
+        return PeriodicTorsions(torsions=jnp.asarray(atoms), force_constants=jnp.asarray(np.tile(k, (rows, 1))),
+                                multiplicities=jnp.asarray(np.tile(m, (rows, 1))),
+                                phases=jnp.asarray(np.tile(np.radians(phases), (rows, 1))), name=name)
+    return build
+
+
+def _restraints_builder(n: int, positions: np.ndarray):
+    from .energy import DistanceRestraints, PositionRestraints
+
+    def build(spec, where):
+        form = _string(spec, "form", where, RESTRAINT_FORMS)
+        name = spec.get("name", where)
+        if form == "position":
+            _check_keys(spec, {"form", "atoms", "reference", "force_constant", "radius", "name", "state"}, where)
+            atoms = _integer_rows(spec.get("atoms"), f"{where}.atoms", 1, n)[:, 0]
+            if "reference" in spec:
+                try:
+                    reference = np.asarray(spec["reference"], dtype=np.float64).reshape(len(atoms), 3)
+                except (TypeError, ValueError):
+                    _fail(f"{where}.reference", f"{len(atoms)} rows of [x, y, z]", spec["reference"])
+            else:
+                reference = positions[atoms]
+            k = _per_row(spec, "force_constant", where, len(atoms), positive=True)
+            radius = None if "radius" not in spec else jnp.asarray(_per_row(spec, "radius", where, len(atoms)))
+            return PositionRestraints(indices=jnp.asarray(atoms), reference=jnp.asarray(reference),
+                                      force_constants=jnp.asarray(k), radius=radius, name=name)
+        _check_keys(spec, {"form", "atoms", "target", "lower", "upper", "force_constant", "name", "state"}, where)
+        atoms = _integer_rows(spec.get("atoms"), f"{where}.atoms", 2, n)
+        if "target" in spec:
+            lower = upper = _per_row(spec, "target", where, len(atoms))
+        else:
+            lower = _per_row(spec, "lower", where, len(atoms))
+            upper = _per_row(spec, "upper", where, len(atoms))
+        return DistanceRestraints(pairs=jnp.asarray(atoms), lower=jnp.asarray(lower), upper=jnp.asarray(upper),
+                                  force_constants=jnp.asarray(_per_row(spec, "force_constant", where, len(atoms), True)),
+                                  name=name)
+    return build
+
+
+def _group_list(table: Any, key: str) -> list[dict]:
+    if not isinstance(table, list) or not all(isinstance(t, dict) for t in table):
+        _fail(key, f"an array of tables ([[{key}]] entries)", table)
+    return table
+
+
+def _nonbonded(data: dict, types: list[str], n: int, unit_system: str, box, bonds: np.ndarray, decouple):
+    from .energy import ScaledPairs, bonded_exclusions, lennard_jones_type_parameters, nonbonded_term
+    from .energy.nonbonded import MIXING_RULES, scaled_pair_parameters
+
+    table = data["nonbonded"]
+    where = "nonbonded"
+    if not isinstance(table, dict):
+        _fail(where, "a table of nonbonded settings", table)
+    _check_keys(table, {"cutoff", "shift", "tail_correction", "reaction_field_dielectric", "dielectric", "mixing",
+                        "exclude_bonded", "scale_14_lj", "scale_14_coulomb", "exclusions", "soft_core_alpha",
+                        "pair_search", "neighbour_capacity"}, where)
+    type_table = data.get("types")
+    if not isinstance(type_table, dict) or not type_table:
+        _fail("types", "a table of per-type parameters, e.g. [types.Ar] sigma = …, epsilon = …, charge = …", type_table)
+    names = sorted(type_table)
+    for t in sorted(set(types)):
+        if t not in type_table:
+            _fail(f"types.{t}", f"parameters for particle type {t!r} (sigma, epsilon, charge)", None)
+    sigma, epsilon, charge = [], [], []
+    for t in names:
+        spec = type_table[t]
+        if not isinstance(spec, dict):
+            _fail(f"types.{t}", "a table with sigma, epsilon and charge", spec)
+        _check_keys(spec, {"sigma", "epsilon", "charge"}, f"types.{t}")
+        sigma.append(_number(spec, "sigma", f"types.{t}", positive=True))
+        eps = _number(spec, "epsilon", f"types.{t}")
+        if eps < 0:
+            _fail(f"types.{t}.epsilon", "a number ≥ 0", eps)
+        epsilon.append(eps)
+        charge.append(_number(spec, "charge", f"types.{t}", default=0.0))
+    index = {t: i for i, t in enumerate(names)}
+    type_of = np.asarray([index[t] for t in types], dtype=np.int32)
+    mixing = _string(table, "mixing", where, MIXING_RULES, "lorentz-berthelot")
+    s, e = np.asarray(sigma), np.asarray(epsilon)
+    sigma_table = np.sqrt(np.outer(s, s)) if mixing == "geometric" else 0.5 * (s[:, None] + s[None, :])
+    lj = lennard_jones_type_parameters(type_of, sigma_table, np.sqrt(np.outer(e, e)))
+    charges = np.asarray(charge)[type_of]
+    cutoff = _number(table, "cutoff", where, default=float("nan"))
+    cutoff = None if np.isnan(cutoff) else cutoff
+    if cutoff is not None and cutoff <= 0:
+        _fail(f"{where}.cutoff", "a positive length", cutoff)
+    if box is not None and cutoff is None:
+        _fail(f"{where}.cutoff", "a cutoff (length) at most half the shortest box edge: the box is periodic", None)
+    if box is not None and cutoff > 0.5 * float(np.min(box)) * (1 + 1e-12):
+        _fail(f"{where}.cutoff", f"at most half the shortest box edge ({0.5 * float(np.min(box)):g})", cutoff)
+    shift = _boolean(table, "shift", where, False)
+    tail = _boolean(table, "tail_correction", where, False)
+    if tail and (box is None or shift):
+        _fail(f"{where}.tail_correction", "false unless the box is periodic and shift = false "
+              "(the analytic tail is for a truncated, unshifted LJ fluid)", True)
+    rf = table.get("reaction_field_dielectric")
+    if rf is not None:
+        rf = _number(table, "reaction_field_dielectric", where, positive=True) if not (isinstance(rf, float) and np.isinf(rf)) else float("inf")
+        if cutoff is None:
+            _fail(f"{where}.reaction_field_dielectric", "a cutoff as well (a reaction field acts beyond the cutoff)", rf)
+    dielectric = _number(table, "dielectric", where, default=1.0, positive=True)
+    separation = table.get("exclude_bonded", 3)
+    if separation not in (0, 1, 2, 3) or isinstance(separation, bool):
+        _fail(f"{where}.exclude_bonded", "0, 1, 2 or 3 (exclude pairs up to this many bonds apart)", separation)
+    excluded = [np.zeros((0, 2), np.int32)]
+    pairs_14 = np.zeros((0, 2), np.int32)
+    if separation and len(bonds):
+        ex, pairs_14 = bonded_exclusions(bonds, n, separation)
+        excluded.append(ex)
+    if "exclusions" in table:
+        excluded.append(np.sort(_integer_rows(table["exclusions"], f"{where}.exclusions", 2, n), axis=1))
+    exclusions = np.unique(np.concatenate(excluded), axis=0) if sum(len(x) for x in excluded) else None
+    scale_lj = _number(table, "scale_14_lj", where, default=0.0)
+    scale_c = _number(table, "scale_14_coulomb", where, default=0.0)
+    if (scale_lj or scale_c) and separation != 3:
+        _fail(f"{where}.scale_14_lj", "0 unless exclude_bonded = 3 (scaled 1-4 pairs replace excluded ones)", scale_lj)
+    alpha = _number(table, "soft_core_alpha", where, default=0.5, positive=True)
+    pair_search = _string(table, "pair_search", where, ("all_pairs", "neighbour_list"), "all_pairs")
+    capacity = table.get("neighbour_capacity")
+    if capacity is not None and (not isinstance(capacity, int) or isinstance(capacity, bool) or capacity < 1):
+        _fail(f"{where}.neighbour_capacity", "a positive whole number of pairs", capacity)
+    has_lj = bool(np.any(e > 0))
+    has_charge = bool(np.any(charges != 0))
+    if not (has_lj or has_charge):
+        _fail("types", "at least one type with epsilon > 0 or a charge (else drop [nonbonded])", type_table)
+    term = nonbonded_term(
+        n, lennard_jones=lj if has_lj else None, charges=charges if has_charge else None, exclusions=exclusions,
+        cutoff=cutoff, lj_shift=shift, reaction_field_dielectric=rf, dielectric=dielectric, units=unit_system,
+        alchemical=decouple, soft_core_alpha=alpha, tail_correction_box=box if tail else None)
+    extra = []
+    if (scale_lj or scale_c) and len(pairs_14):
+        from .units import unit_system as get_unit_system
+        ps, pe, pq = scaled_pair_parameters(pairs_14, lj, charges, scale_lj, scale_c)
+        extra.append(ScaledPairs(pairs=jnp.asarray(pairs_14), sigma=ps, epsilon=pe, charge_products=pq,
+                                 coulomb_constant=get_unit_system(unit_system).coulomb_constant,
+                                 dielectric=dielectric, name="pairs_14"))
+    info = {"types": names, "cutoff": cutoff, "shift": shift, "tail_correction": tail, "reaction_field_dielectric": rf,
+            "pair_search": pair_search, "neighbour_capacity": capacity, "charged": has_charge}
+    return term, extra, info
+
+
+def _parse_particle_system(data: dict, source: str) -> System:
+    from .alchemy import STAGE_SHAPES, ParameterInterpolationPath, SoftCoreDecouplingPath
+    from .energy import assemble
+    from .units import unit_system as get_unit_system
+
+    _check_keys(data, PARTICLE_TOP_KEYS, "top level (particle system)")
+    if "units" not in data:
+        _fail("units", f"one of {list(PARTICLE_UNIT_SYSTEMS)} (required for particle systems)", None)
+    unit_system = data["units"]
+    if unit_system not in PARTICLE_UNIT_SYSTEMS:
+        _fail("units", f"one of {list(PARTICLE_UNIT_SYSTEMS)} for a particle system (energies kJ/mol, lengths nm, "
+              "temperature K; or Lennard-Jones reduced units)", unit_system)
+    if unit_system == "reduced":
+        if "temperature" in data:
+            _fail("temperature", "no temperature with units = 'reduced' (give kT = T* instead)", data["temperature"])
+        kT = _number(data, "kT", "top level", positive=True)
+        energy_unit = "reduced"
+    else:
+        if "kT" in data:
+            _fail("kT", "no kT with units = 'kJ/mol-nm-K': give temperature in kelvin", data["kT"])
+        kT = float(get_unit_system(unit_system).kT(_number(data, "temperature", "top level", positive=True)))
+        energy_unit = "kJ/mol"
+    folder = pathlib.Path(source).parent if source != "<dict>" else pathlib.Path(".")
+    types, positions = _particles(data, folder)
+    n = len(types)
+
+    box = None
+    if "box" in data:
+        table = data["box"]
+        if not isinstance(table, dict):
+            _fail("box", "a table with edges = [Lx, Ly, Lz] (orthorhombic, periodic)", table)
+        _check_keys(table, {"edges"}, "box")
+        box = _vector(table, "edges", "box", 3, positive=True) if not isinstance(table.get("edges"), (int, float)) \
+            else np.full(3, _number(table, "edges", "box", positive=True))
+
+    # ---- bonded groups and restraints
+    topology = data.get("topology", {})
+    if not isinstance(topology, dict):
+        _fail("topology", "a table with [[topology.bonds]], [[topology.angles]], [[topology.torsions]]", topology)
+    _check_keys(topology, {"bonds", "angles", "torsions"}, "topology")
+    groups: list[_Group] = []
+    builders = {"bonds": _bonds_builder(n), "angles": _angles_builder(n), "torsions": _torsions_builder(n)}
+    for kind in ("bonds", "angles", "torsions"):
+        for i, spec in enumerate(_group_list(topology.get(kind, []), f"topology.{kind}")):
+            groups.append(_Group(kind, spec, f"topology.{kind}[{i}]", builders[kind]))
+    for i, spec in enumerate(_group_list(data.get("restraints", []), "restraints")):
+        groups.append(_Group("restraints", spec, f"restraints[{i}]", _restraints_builder(n, positions)))
+    names = [g.name for g in groups]
+    duplicate = sorted({x for x in names if names.count(x) > 1})
+    if duplicate:
+        _fail("name", "distinct group names", duplicate)
+    for g in groups:  # the terms carry the group name (assemble needs distinct names)
+        g.term_a = g.build({**g.spec, "name": g.name}, g.where)
+    bonds = np.concatenate([np.asarray(g.term_a.bonds) for g in groups if g.kind == "bonds"] or [np.zeros((0, 2), np.int32)])
+
+    # ---- the change from A to B
+    change = data.get("change", {})
+    if not isinstance(change, dict):
+        _fail("change", "a table describing how state B differs from A", change)
+    _check_keys(change, {"decouple", "electrostatics_share", "stage_shape", "parameters"}, "change")
+    decouple = None
+    if "decouple" in change:
+        decouple = _integer_rows(change["decouple"], "change.decouple", 1, n)[:, 0]
+        if "nonbonded" not in data:
+            _fail("change.decouple", "a [nonbonded] table as well (only nonbonded interactions are decoupled)",
+                  change["decouple"])
+    by_name = {g.name: g for g in groups}
+    for i, spec in enumerate(_group_list(change.get("parameters", []), "change.parameters")):
+        where = f"change.parameters[{i}]"
+        target = spec.get("group")
+        if target not in by_name:
+            _fail(f"{where}.group", f"the name of a bonded or restraint group, one of {sorted(by_name)}", target)
+        group = by_name[target]
+        if group.state != "both":
+            _fail(f"{where}.group", "a group present in both states (state = 'both')", target)
+        if group.term_b is not None:
+            _fail(f"{where}.group", "each group changed at most once", target)
+        fixed = {"atoms", "form", "name", "state"}
+        bad = sorted(set(spec) & fixed)
+        if bad:
+            _fail(f"{where}.{bad[0]}", "unchanged: only parameters can change along the path (not atoms or form)", spec[bad[0]])
+        new = {**group.spec, **{k: v for k, v in spec.items() if k != "group"}, "name": group.name}
+        group.term_b = group.build(new, where)
+        import jax
+        shapes_a = [np.shape(x) for x in jax.tree_util.tree_leaves(group.term_a)]
+        shapes_b = [np.shape(x) for x in jax.tree_util.tree_leaves(group.term_b)]
+        if shapes_a != shapes_b:
+            _fail(where, "parameters with the same number of values as in state A (they are interpolated)", spec)
+    if not (decouple is not None or any(g.term_b is not None or g.state != "both" for g in groups)):
+        _fail("change", "some difference between the end states: decouple = [...], [[change.parameters]], "
+              "or a group with state = 'a' or 'b'", change)
+
+    nonbonded, pair_terms, info = None, [], {}
+    if "nonbonded" in data:
+        nonbonded, pair_terms, info = _nonbonded(data, types, n, unit_system, box, bonds, decouple)
+    elif "types" in data:
+        _fail("types", "no [types] without a [nonbonded] table (types only carry nonbonded parameters)", data["types"])
+    shared = [g.term_a for g in groups if g.state == "both" and g.term_b is None] + pair_terms
+    changed = [g for g in groups if g.term_b is not None]
+    only_a = [g.term_a for g in groups if g.state == "a"]
+    only_b = [g.term_a for g in groups if g.state == "b"]
+    every = shared + [g.term_a for g in changed] + only_a + only_b + ([nonbonded] if nonbonded is not None else [])
+    try:
+        model = assemble(every or [], box=box, units=unit_system)
+    except ValueError as err:
+        raise SystemFileError(f"the terms do not fit together: {err}") from None
+    if decouple is not None:
+        share = change.get("electrostatics_share")
+        if share is not None:
+            share = _number(change, "electrostatics_share", "change")
+            if not 0.0 <= share < 1.0:
+                _fail("change.electrostatics_share", "a number in [0, 1)", share)
+        shape = _string(change, "stage_shape", "change", STAGE_SHAPES, "smooth")
+        model_ab = assemble(shared + [nonbonded], box=box, units=unit_system)
+        path = SoftCoreDecouplingPath(
+            model_ab, kT, electrostatics_share=share, stage_shape=shape,
+            changed_a=[g.term_a for g in changed], changed_b=[g.term_b for g in changed], only_a=only_a, only_b=only_b,
+            pair_search=info.get("pair_search", "all_pairs"), neighbour_capacity=info.get("neighbour_capacity"),
+            reference_positions=positions)
+    else:
+        for key in ("electrostatics_share", "stage_shape"):
+            if key in change:
+                _fail(f"change.{key}", "no value without change.decouple", change[key])
+        path = ParameterInterpolationPath(
+            shared + ([nonbonded] if nonbonded is not None else []), [g.term_a for g in changed],
+            [g.term_b for g in changed], only_a, only_b, box=model.box, kT=kT)
+    reference, settings = _reference_and_settings(data)
+    particles = {"count": n, "types": sorted(set(types)), "box": None if box is None else box.tolist(),
+                 "unit_system": unit_system, "decoupled": [] if decouple is None else decouple.tolist(),
+                 "changed": [g.name for g in changed], "released": [t.name for t in only_a],
+                 "added": [t.name for t in only_b], **info}
+    return System(
+        name=str(data.get("name", pathlib.Path(source).stem)), description=str(data.get("description", "")),
+        energy_a=path.end_function("a"), energy_b=path.end_function("b"), start_a=positions, start_b=positions.copy(),
+        kT=kT, units=energy_unit, reference=reference, settings=settings, source=source, path=path,
+        unit_system=unit_system, particles=particles,
     )
 
 

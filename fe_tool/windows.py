@@ -4,10 +4,11 @@ Plan → run → :class:`~fe_tool.results.Result`, the same shape as :func:`fe_t
 
 1. a ladder λ_0 = 0 < … < λ_{K−1} = 1 on one path (Gauss–Legendre nodes plus both end
    states, uniform, or any schedule of :data:`fe_tool.path.SCHEDULES`, or explicit values);
-2. each window is sampled by the Metropolis-adjusted sampler of :mod:`fe_tool.sampling`
-   (its own step-size adaptation, burn-in until equilibrated, thinning by the measured
-   autocorrelation time, stuck chains excluded and reported), every window with the same
-   number of samples and the same share of the budget;
+2. each window is equilibrated by the Metropolis-adjusted sampler of :mod:`fe_tool.sampling`
+   (its own step-size adaptation and preconditioner, burn-in until equilibrated, stuck chains
+   excluded and reported), with at most 60 % of an equal share of the budget; then its healthy
+   chains continue and keep one sample every ⌈τ⌉ steps (τ measured by the sampler), the same
+   number of samples in every window, sized so sampling plus analysis fit the budget;
 3. optionally (``exchange=True``) a production phase with Hamiltonian replica exchange:
    after every sweep of sampler steps, configurations of neighbouring windows swap with
    probability min(1, exp(u_i(x_i) + u_j(x_j) − u_i(x_j) − u_j(x_i))) (Sugita, Kitao &
@@ -46,7 +47,7 @@ from .sampling import (
     sample_state,
     window_target,
 )
-from .workflow import _validate
+from .inputs import validate_inputs
 
 DEFAULT_WINDOWS = 10             # with a budget: at most this many (see _default_window_count)
 OVERLAP_WARNING = 0.03           # smallest acceptable MBAR overlap between neighbouring windows
@@ -291,8 +292,9 @@ def estimate_windows(
         seed: integer seed; the same seed reproduces the same numbers.
         budget: total energy evaluations (sampling of all windows + exchange + analysis),
             split evenly: every window gets the same samples and the same sampling share.
-        windows, spacing: the ladder, see :func:`window_ladder` (default: 10 Gauss–Legendre
-            nodes plus both ends, 12 windows).
+        windows, spacing: the ladder, see :func:`window_ladder`.  Default: one window per
+            25 000 evaluations of budget, 4 to 12 windows (for Gauss–Legendre: 2 to 10 nodes plus
+            both ends), since each window pays its own warm-up and burn-in.
         chains: sampler chains per window (default: from the budget share, 4 to 64).
         samples_per_window: kept (decorrelated) samples per window; default from the budget.
         exchange: Hamiltonian replica exchange between neighbouring windows in production.
@@ -326,7 +328,7 @@ def estimate_windows(
         raise ValueError(f"chains must be at least 4 (chain agreement is measured between chains), got {chains}")
     if exchange_every < 1:
         raise ValueError(f"exchange_every must be a positive number of sampler steps, got {exchange_every}")
-    x_a, x_b, kT = _validate(energy_a, energy_b, start_a, start_b, kT)
+    x_a, x_b, kT = validate_inputs(energy_a, energy_b, start_a, start_b, kT)
     path = path if path is not None else LinearPath(energy_a, energy_b, kT)
     if windows is None:
         # every window needs ~25 000 evaluations for warm-up, burn-in and a few hundred samples

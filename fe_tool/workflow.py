@@ -17,6 +17,7 @@ import numpy as np
 
 from . import diagnostics as diag
 from .estimators import bar, crooks_gaussian, jarzynski, work_overlap
+from .inputs import validate_inputs
 from .path import LinearPath, Path, make_schedule
 from .planning import PILOT_SCALES, PilotPoint, length_profile, plan_protocol, schedule_from_profile
 from .results import Result
@@ -28,6 +29,7 @@ PILOT_TRAJECTORIES = 64
 PILOT_STEPS = 32
 SWITCH_BATCH = 128
 CONTROL_MODES = ("none", "learned", "auto")
+METHODS = ("switching", "windows")
 SAMPLING_SHARE = 0.3  # of the budget, at most, for each end state
 DIVERGED_WORK = 1e6  # kT; a larger |work| means the Langevin integration blew up
 
@@ -44,6 +46,11 @@ class Options:
     """Options of :func:`estimate` (all keyword-only there).
 
     Attributes:
+        method: ``"switching"`` (nonequilibrium switching both ways, BAR headline) or
+            ``"windows"`` (equilibrium λ-windows analysed with MBAR, BAR and TI; see
+            :func:`fe_tool.windows.estimate_windows`).
+        windows, spacing, exchange: the windows route's ladder (count or λ array), its
+            spacing (``"gauss-legendre"``, ``"uniform"``, ...) and Hamiltonian replica exchange.
         budget: total energy evaluations the call may spend (end-state sampling, pilot,
             training and switching); ``None`` means ``DEFAULT_BUDGET`` when the protocol is
             chosen automatically, and no limit when both ``switching_steps`` and
@@ -73,6 +80,10 @@ class Options:
         progress: show progress bars (default: only in a terminal).
     """
 
+    method: str = "switching"
+    windows: Any = None
+    spacing: str = "gauss-legendre"
+    exchange: bool = False
     budget: int | None = None
     switching_steps: int | None = None
     trajectories: int | None = None
@@ -105,6 +116,14 @@ def _check_options(options: dict) -> Options:
         raise ValueError("trajectories must be at least 2 per direction")
     if opts.step_scale is not None and not (opts.step_scale > 0 and math.isfinite(opts.step_scale)):
         raise ValueError(f"step_scale must be a positive number, got {opts.step_scale!r}")
+    if opts.method not in METHODS:
+        raise ValueError(f"method={opts.method!r}: choose one of {list(METHODS)}")
+    if opts.method == "windows":
+        switching_only = [n for n in ("switching_steps", "trajectories", "step_scale", "save_control")
+                          if getattr(opts, n) is not None] + (["control"] if opts.control not in ("none", None) else [])
+        if switching_only:
+            raise ValueError(f"option(s) {switching_only} belong to the switching route; drop them or use "
+                             "method='switching'")
     if opts.chains < 4:
         raise ValueError(f"chains must be at least 4 (chain agreement is measured between chains), got {opts.chains}")
     if isinstance(opts.control, str) and opts.control not in CONTROL_MODES:
@@ -115,52 +134,6 @@ def _check_options(options: dict) -> Options:
     if opts.reference is not None and "delta_f" not in opts.reference:
         raise ValueError("reference must be a mapping with at least 'delta_f' (and ideally 'source', 'tolerance')")
     return opts
-
-
-def _check_energy(fn: Callable, start: jnp.ndarray, label: str, kT: float) -> None:
-    if not callable(fn):
-        raise ValueError(f"energy_{label} must be a callable taking one configuration array, got {type(fn).__name__}")
-    try:
-        value, grad = jax.value_and_grad(lambda x: jnp.asarray(fn(x)))(start)
-    except TypeError as err:
-        if "scalar" in str(err) or "shape" in str(err):
-            out = jax.eval_shape(fn, start)
-            raise ValueError(f"energy_{label} must return a scalar, but returns shape {getattr(out, 'shape', '?')}; "
-                             "sum the terms (e.g. jnp.sum) before returning") from err
-        raise ValueError(f"energy_{label} could not be traced by JAX at start_{label}: {err}. "
-                         "Write it with jax.numpy operations only (no numpy conversions or Python branches on values)") from err
-    if np.ndim(value) != 0:
-        raise ValueError(f"energy_{label} must return a scalar, but returns shape {np.shape(value)}")
-    if not np.isfinite(float(value)):
-        raise ValueError(f"energy_{label} is not finite at start_{label} ({float(value)}); give a start configuration "
-                         "where the energy is finite (no overlapping particles, inside any walls)")
-    if not np.all(np.isfinite(np.asarray(grad))):
-        raise ValueError(f"the gradient of energy_{label} is not finite at start_{label}; move the start away from "
-                         "singular points (coincident particles, r = 0 of a pair term)")
-    del kT
-
-
-def _validate(energy_a, energy_b, start_a, start_b, kT) -> tuple[jnp.ndarray, jnp.ndarray, float]:
-    try:
-        kT = float(kT)
-    except (TypeError, ValueError):
-        raise ValueError(f"kT must be a positive number in the energy functions' units, got {kT!r}") from None
-    if not (kT > 0 and math.isfinite(kT)):
-        raise ValueError(f"kT must be positive and finite (same units as the energies), got {kT}")
-    arrays = []
-    for label, s in (("a", start_a), ("b", start_b)):
-        arr = np.asarray(s)
-        if arr.dtype.kind not in "fiu" or arr.size == 0:
-            raise ValueError(f"start_{label} must be a non-empty numeric array (a vector or N×3 coordinates)")
-        if not np.all(np.isfinite(arr)):
-            raise ValueError(f"start_{label} contains NaN or inf coordinates")
-        arrays.append(jnp.asarray(arr, dtype=jnp.float64))
-    if arrays[0].shape != arrays[1].shape:
-        raise ValueError(f"start_a has shape {arrays[0].shape} but start_b has shape {arrays[1].shape}; both end states "
-                         "must describe the same configuration space (same number of particles/coordinates)")
-    _check_energy(energy_a, arrays[0], "a", kT)
-    _check_energy(energy_b, arrays[1], "b", kT)
-    return arrays[0], arrays[1], kT
 
 
 def _progress_enabled(flag: bool | None) -> bool:
@@ -273,7 +246,13 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
     """
     t_start = time.perf_counter()
     opts = _check_options(options)
-    x_a, x_b, kT = _validate(energy_a, energy_b, start_a, start_b, kT)
+    x_a, x_b, kT = validate_inputs(energy_a, energy_b, start_a, start_b, kT)
+    if opts.method == "windows":
+        from .windows import estimate_windows
+
+        return estimate_windows(energy_a, energy_b, x_a, x_b, kT=kT, seed=seed,
+                                budget=opts.budget or DEFAULT_BUDGET, windows=opts.windows, spacing=opts.spacing,
+                                exchange=opts.exchange, path=opts.path, units=opts.units, reference=opts.reference)
     path = opts.path if opts.path is not None else LinearPath(energy_a, energy_b, kT)
     per_point = path.evaluations_per_point(1)
     fixed = opts.switching_steps is not None and opts.trajectories is not None

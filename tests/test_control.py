@@ -19,7 +19,8 @@ from fe_tool.control import (ControlScales, Controller, MLPControl, Protocol, Tr
                              load_control, make_optimiser, path_kl_loss, prepare_control, record_paths, save_control,
                              score_path, system_fingerprint, train_step)
 from fe_tool.path import LinearPath
-from fe_tool.switching import switch
+from fe_tool.switching import switch as plain_switch
+from fe_tool.switching import switch_jit as switch  # one compilation per shape, not op-by-op
 
 
 def bar(work_forward, work_reverse):
@@ -98,14 +99,19 @@ def test_score_path_reproduces_simulated_works(key):
     path, xa, xb, _ = harmonic_pair()
     lams, eps = jnp.linspace(0, 1, 7), jnp.full(6, 0.15)
     drift = bind_control(random_control((1,), xa, xb, 0), lams, eps)
-    for direction, starts in (("forward", xa[:64]), ("reverse", xb[:64])):
-        works, inc, _ = switch(path, drift, key, jnp.asarray(starts), lams, eps, 1.0, 1.0, direction)
-        w2, inc2, positions, energies, grads = record_paths(path, drift, key, jnp.asarray(starts), lams, eps, 1.0, 1.0,
-                                                            direction)
+
+    @eqx.filter_jit
+    def all_works(drift, starts, direction):
+        works, inc, _ = plain_switch(path, drift, key, starts, lams, eps, 1.0, 1.0, direction)
+        w2, _, positions, energies, grads = record_paths(path, drift, key, starts, lams, eps, 1.0, 1.0, direction)
         scored, inc3 = jax.vmap(lambda p: score_path(path, drift, p, lams, eps, 1.0, 1.0, direction))(positions)
         reused, _ = jax.vmap(lambda p, e, g: score_path(path, drift, p, lams, eps, 1.0, 1.0, direction, e, g))(
             positions, energies, grads)
-        np.testing.assert_array_equal(works, w2)
+        return works, inc, w2, scored, inc3, reused
+
+    for direction, starts in (("forward", xa[:64]), ("reverse", xb[:64])):
+        works, inc, w2, scored, inc3, reused = all_works(drift, jnp.asarray(starts), direction)
+        np.testing.assert_allclose(w2, works, rtol=0, atol=1e-12)
         np.testing.assert_allclose(scored, works, atol=1e-10)
         np.testing.assert_allclose(reused, works, atol=1e-10)
         np.testing.assert_allclose(inc3, inc, atol=1e-10)
@@ -176,7 +182,7 @@ def test_drift_is_bounded():
     lams, eps = jnp.linspace(0, 1, 5), jnp.full(4, 1e-3)
     drift = bind_control(control, lams, eps)
     x = jnp.asarray(np.random.default_rng(0).normal(size=(50, 2)) * 100)
-    values = jax.vmap(lambda xi: drift(xi, lams[2]))(x)
+    values = eqx.filter_jit(jax.vmap(lambda xi: drift(xi, lams[2])))(x)
     assert np.all(np.abs(values) <= np.asarray(control.drift_bound()) + 1e-12)
 
 
@@ -185,23 +191,27 @@ def test_drift_is_bounded():
 def test_training_finds_the_moving_well_transport(trained_moving_well):
     """(b) Equal-stiffness wells with a moving centre: ΔF = 0 and, in continuous time, the constant
     shift v = dc/dλ = 3 transports π_λ exactly (zero work).  With Euler steps of ε = 0.1, K = 8 that
-    analytic shift control still leaves a spread of ≈0.07 kT (the Euler error, measured below), and
-    uncontrolled switching ≈2.7 kT.  We assert the learned spread is ≤ 0.25 kT: ≥ 10× below
-    uncontrolled and within 0.2 kT of the analytic control, leaving room for ~300 noisy Adam steps."""
+    analytic shift control still leaves a spread of ≈0.07 kT (the discretisation error, measured
+    below), uncontrolled switching ≈2.8 kT.  We assert the learned spread is ≤ 0.15 kT: at most about
+    twice the analytic control's floor (trained runs reach 0.06-0.09) and ≥ 15× below uncontrolled."""
     path, xa, xb, lams, eps, outcome = trained_moving_well
     shift = lambda x, lam: jnp.full_like(x, MOVE / (8 * 0.1))  # noqa: E731
-    w_shift, _, _ = switch(path, shift, jax.random.key(9), jnp.asarray(xa), jnp.asarray(lams), jnp.asarray(eps), 1.0, 1.0)
+    w_shift, _, _ = switch(path, shift, jax.random.key(9), jnp.asarray(xa), jnp.asarray(lams), jnp.asarray(eps), 1.0, 1.0,
+                           "forward")
     assert float(np.std(w_shift)) < 0.1
     assert outcome.work_spread_before > 2.0
-    assert outcome.work_spread_after < 0.25
-    assert outcome.work_spread_after < 0.1 * outcome.work_spread_before
-    # fresh trajectories in both directions with the production drift: BAR recovers ΔF = 0
+    assert outcome.work_spread_after < 0.15
+    assert outcome.work_after["reverse"]["spread"] < 0.15 and outcome.work_after["reverse"]["nonfinite"] == 0
+    # fresh trajectories in both directions with the production drift: BAR recovers ΔF = 0 within 4σ
+    # (σ from 16 independent blocks)
     kf, kr = jax.random.split(jax.random.key(10))
-    wf, _, _ = switch(path, outcome.drift, kf, jnp.asarray(xa), jnp.asarray(outcome.lams), jnp.asarray(outcome.step_sizes), 1.0, 1.0)
-    wr, _, _ = switch(path, outcome.drift, kr, jnp.asarray(xb), jnp.asarray(outcome.lams), jnp.asarray(outcome.step_sizes), 1.0, 1.0,
-                      "reverse")
-    assert np.std(wf) < 0.3 and np.std(wr) < 0.3
-    assert abs(bar(np.asarray(wf), np.asarray(wr))) < 4 * 0.3 / math.sqrt(len(xa))
+    protocol = (jnp.asarray(outcome.lams), jnp.asarray(outcome.step_sizes), 1.0, 1.0)
+    wf, _, _ = switch(path, outcome.drift, kf, jnp.asarray(xa), *protocol, "forward")
+    wr, _, _ = switch(path, outcome.drift, kr, jnp.asarray(xb), *protocol, "reverse")
+    wf, wr = np.asarray(wf), np.asarray(wr)
+    assert np.std(wf) < 0.15 and np.std(wr) < 0.15
+    blocks = [bar(a, b) for a, b in zip(np.array_split(wf, 16), np.array_split(wr, 16))]
+    assert abs(bar(wf, wr)) < 4 * np.std(blocks, ddof=1) / 4.0
     # cost accounting: before + after runs and each check and step are charged
     assert outcome.evaluations <= 0.5 * 500_000
     assert outcome.history and outcome.history[-1]["evaluations"] <= outcome.evaluations
@@ -211,21 +221,21 @@ def test_training_finds_the_moving_well_transport(trained_moving_well):
 @pytest.mark.parametrize("objective", ["kl", "logvar"])
 def test_objectives_reduce_the_work_spread_on_a_double_well(objective):
     """(c) Path-KL (mean forward work) and the detached log-variance loss both lower the validation
-    work spread on a 1-D double-well pair; the uncontrolled spread is ≈1.7 kT at K = 16.  We ask for
-    at least a 25% cut (longer runs in the benchmark reach ~4×)."""
+    work spread on a 1-D double-well pair; the uncontrolled spread is ≈1.8 kT at K = 16.  We ask for
+    at least a halving (seeds 2-4 reach 2.6-3.0× here; the benchmark's longer runs ~4.5×)."""
     path, xa, xb = double_well()
     k = 16
     outcome = prepare_control(jax.random.key(2), path, xa, xb, np.linspace(0, 1, k + 1), np.full(k, 0.02), 1.0, 1.0,
-                              mode="learned", budget=400_000, objective=objective, learn_schedule=False,
+                              mode="learned", budget=300_000, objective=objective, learn_schedule=False,
                               learn_steps="none")
     assert outcome.work_before["forward"]["nonfinite"] == 0 and outcome.work_after["forward"]["nonfinite"] == 0
-    assert outcome.work_spread_after < 0.75 * outcome.work_spread_before
+    assert outcome.work_spread_after < 0.5 * outcome.work_spread_before
     assert outcome.skipped_steps == 0
 
 
 def test_training_step_compiles_once(key):
     """(f) A second optimiser step with new data and a new key does not retrace the loss
-    (compilation test in the style of blackjax's test_compilation.py)."""
+    (compilation test in the style of blackjax's test_compilation.py); a non-finite step is skipped."""
     path, xa, xb = moving_well()
     traces = {"loss": 0}
 
@@ -246,6 +256,12 @@ def test_training_step_compiles_once(key):
         trainable, opt_state, loss, finite, _ = train_step(trainable, frozen, opt_state, jax.random.fold_in(key, i),
                                                            data, path, setup)
         assert bool(finite) and np.isfinite(float(loss))
+    # divergence guard: a step whose loss is not finite is skipped, parameters and state unchanged
+    broken = TrainData(jnp.full_like(jnp.asarray(xa), jnp.nan), jnp.asarray(xb), one, one)
+    after, state_after, loss, finite, _ = train_step(trainable, frozen, opt_state, key, broken, path, setup)
+    assert not bool(finite) and not np.isfinite(float(loss))
+    for new, old in zip(jax.tree_util.tree_leaves((after, state_after)), jax.tree_util.tree_leaves((trainable, opt_state))):
+        np.testing.assert_array_equal(new, old)
     assert traces["loss"] == 1
 
 
@@ -277,8 +293,8 @@ def test_save_load_round_trip_gives_identical_works(trained_moving_well, tmp_pat
     np.testing.assert_array_equal(loaded.lams, outcome.lams)
     starts = jnp.asarray(xa[:256])
     args = (jax.random.key(4), starts, jnp.asarray(outcome.lams), jnp.asarray(outcome.step_sizes), 1.0, 1.0)
-    w_saved, _, _ = switch(path, outcome.drift, *args)
-    w_loaded, _, _ = switch(path, loaded.drift, *args)
+    w_saved, _, _ = switch(path, outcome.drift, *args, "forward")
+    w_loaded, _, _ = switch(path, loaded.drift, *args, "forward")
     np.testing.assert_array_equal(np.asarray(w_saved), np.asarray(w_loaded))
     assert loaded.header["versions"]["jax"] == jax.__version__
     again = prepare_control(jax.random.key(1), path, xa, xb, lams, eps, 1.0, 1.0, mode="reuse", budget=500_000,
@@ -295,7 +311,7 @@ def test_mismatched_fingerprint_is_refused(trained_moving_well, tmp_path):
     save_control(file, outcome, fingerprint=system_fingerprint(path, probe), settings={"system": "moving well"},
                  probe=probe)
     other = LinearPath(lambda x: 0.5 * jnp.sum(x**2), lambda x: 1.0 * jnp.sum((x - MOVE) ** 2))
-    with pytest.raises(ValueError, match="trained for system fingerprint .* moving well"):
+    with pytest.raises(ValueError, match="trained for system fingerprint .*moving well"):
         load_control(file, path=other)
     with pytest.raises(ValueError, match="Train a new control"):
         load_control(file, expected_fingerprint=system_fingerprint(other, probe))

@@ -2,7 +2,9 @@ r"""Learnable switching protocols (λ schedule, step sizes) and the drift a cont
 
 A :class:`Protocol` holds free parameters that always map to a valid protocol:
 
-    λ_k = Σ_{i<k} softmax(a)_i   (k = 0…K),  so λ_0 = 0, λ_K = 1, λ strictly increasing;
+    Δλ_k = δλ + (1 − K δλ) softmax(a)_k,   λ_k = Σ_{i<k} Δλ_i,
+    so λ_0 = 0, λ_K = 1 and every step is at least δλ wide (λ strictly increasing even
+    in floating point; δλ = min(10⁻³/K, half the narrowest starting step));
     ε_k = exp( ℓ(λ̄_k) + δ·tanh(o_k / δ) ),   λ̄_k = (λ_k + λ_{k+1}) / 2,
 
 where ``a`` are the schedule logits, ℓ(λ) is the starting log step size
@@ -57,16 +59,18 @@ class Protocol(eqx.Module):
     """A λ schedule and step sizes parameterised so that they always stay valid.
 
     Attributes:
-        schedule_logits: (K,) free logits a; λ increments are softmax(a).
+        schedule_logits: (K,) free logits a.
         reference_midpoints, reference_log_steps: (K,) the starting protocol's step
             midpoints and log step sizes; ℓ(λ) interpolates between them (not trained).
         step_log_offset: learned log step offset o, shape () (global) or (K,) (per step).
+        min_increment: δλ, the narrowest allowed step (not trained).
     """
 
     schedule_logits: Array
     reference_midpoints: Array
     reference_log_steps: Array
     step_log_offset: Array
+    min_increment: Array
 
     @classmethod
     def from_schedule(cls, lams, step_sizes, per_step_offsets: bool = False) -> "Protocol":
@@ -80,15 +84,20 @@ class Protocol(eqx.Module):
         if not np.all(step_sizes > 0):
             raise ValueError("step_sizes must be positive")
         k = lams.size - 1
+        increments = np.diff(lams)
+        floor = float(min(1e-3 / k, 0.5 * increments.min()))
+        logits = np.log((increments - floor) / (1.0 - k * floor))
         offset = jnp.zeros((k,) if per_step_offsets else ())
-        return cls(jnp.asarray(np.log(np.diff(lams))), jnp.asarray(midpoints(lams)), jnp.asarray(np.log(step_sizes)), offset)
+        return cls(jnp.asarray(logits), jnp.asarray(midpoints(lams)), jnp.asarray(np.log(step_sizes)), offset, jnp.asarray(floor))
 
     @property
     def steps(self) -> int:
         return self.schedule_logits.shape[0]
 
     def lams(self) -> Array:
-        increments = jax.nn.softmax(self.schedule_logits)
+        k = self.schedule_logits.shape[0]
+        floor = jax.lax.stop_gradient(self.min_increment)
+        increments = floor + (1.0 - k * floor) * jax.nn.softmax(self.schedule_logits)
         inner = jnp.cumsum(increments)[:-1]
         return jnp.concatenate([jnp.zeros((1,), inner.dtype), inner, jnp.ones((1,), inner.dtype)])
 
@@ -102,7 +111,7 @@ class Protocol(eqx.Module):
 
     def trainable(self, schedule: bool, steps: bool):
         """Filter tree for :func:`equinox.partition`."""
-        return Protocol(bool(schedule), False, False, bool(steps))
+        return Protocol(bool(schedule), False, False, bool(steps), False)
 
     def resampled(self, steps: int) -> tuple[np.ndarray, np.ndarray]:
         """This protocol's schedule and step sizes carried over to ``steps`` steps (numpy)."""

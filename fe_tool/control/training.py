@@ -153,6 +153,8 @@ def run_training(key, path, model: Controller, spec, data: TrainData, setup: Tra
     """
     from tqdm.auto import tqdm
 
+    # without a finite uncontrolled spread the "ratio" is spread² · B/(B − spent) in kT²: same stopping rule
+    reference = baseline_spread if (math.isfinite(baseline_spread) and baseline_spread > 0) else 1.0
     trainable, frozen = eqx.partition(model, spec)
     opt_state = setup.optimiser.init(trainable)
     spent = int(spent_before)
@@ -194,7 +196,7 @@ def run_training(key, path, model: Controller, spec, data: TrainData, setup: Tra
             summary = work_summary(works)
             spread = summary["spread"] if summary["nonfinite"] == 0 else math.inf
             left = total_budget - spent
-            ratio = (spread / baseline_spread) ** 2 * total_budget / left if left > 0 and baseline_spread > 0 else math.inf
+            ratio = (spread / reference) ** 2 * total_budget / left if left > 0 else math.inf
             history.append({
                 "optimiser_step": steps, "evaluations": spent,
                 "loss": float(np.mean(losses)) if losses else float("nan"),
