@@ -7,6 +7,11 @@ never taken from the tool's own output.
   (Tuckerman 2010, *Statistical Mechanics: Theory and Molecular Simulation*, OUP;
   McQuarrie 1976, *Statistical Mechanics* [mem for chapter]).
 * Double wells: ΔF = −kT ln(Z_B/Z_A) with Z = ∫ exp(−U/kT) dx by ``scipy.integrate.quad``.
+* Catalogue systems (``systems/*.toml``) with a ``[reference]``: the file's ΔF and source
+  (Müller–Brown by 2-D quadrature, the butane-like torsion change by 1-D quadrature over the
+  dihedral, the Lennard-Jones decoupling from the Kolafa–Nezbeda 1994 equation of state).
+  The quick default runs :data:`QUICK_CATALOGUE`; ``include_slow=True`` runs every file with a
+  reference (the particle systems take minutes each).
 
 A case passes when |estimate − reference| ≤ max(0.1 kT, 4·stderr) and the reported
 stderr is at most 0.15 kT — the tool's accuracy promise for its default settings.
@@ -36,6 +41,7 @@ class Case:
     reference: float  # ΔF in kT
     source: str
     kT: float = 1.0
+    system: object = None  # a fe_tool.systemfile.System: run through System.estimate (its path and settings)
 
 
 @dataclasses.dataclass
@@ -107,8 +113,39 @@ def standard_cases(include_slow: bool = False) -> list[Case]:
     return cases
 
 
+QUICK_CATALOGUE = ("mueller_brown",)
+"""Catalogue files (stems) in the quick self-check; the rest need ``include_slow=True``."""
+
+
+def catalogue_cases(include_slow: bool = False) -> list[Case]:
+    """One case per catalogue file with a ``[reference]`` (quick subset unless ``include_slow``).
+
+    The reference is the file's own ``delta_f`` (computed independently when the file was
+    written and recomputed by the tests), converted to kT.
+    """
+    from .systemfile import list_systems, load_system
+
+    field_duplicates = {"harmonic_3d", "double_well_1d", "harmonic_anisotropic_50d", "restraint_release_kjmol"}
+    cases = []
+    for file in list_systems():
+        if file.stem in field_duplicates:  # same closed forms as the standard cases above
+            continue
+        if not include_slow and file.stem not in QUICK_CATALOGUE:
+            continue
+        system = load_system(file)
+        if system.reference is None:
+            continue
+        cases.append(Case(f"catalogue: {file.stem}", system.energy_a, system.energy_b, system.start_a,
+                          system.start_b, system.reference["delta_f"] / system.kT, system.reference["source"],
+                          system.kT, system=system))
+    return cases
+
+
 def run_case(case: Case, seed: int = 0, **options) -> CaseOutcome:
-    result = estimate(case.energy_a, case.energy_b, case.start_a, case.start_b, kT=case.kT, seed=seed, **options)
+    if case.system is not None:
+        result = case.system.estimate(seed=seed, **options)
+    else:
+        result = estimate(case.energy_a, case.energy_b, case.start_a, case.start_b, kT=case.kT, seed=seed, **options)
     df, se = result.in_kT()
     passed = abs(df - case.reference) <= max(0.1, 4 * se) and se <= 0.15
     return CaseOutcome(case.name, case.reference, df, se, bool(passed), result.energy_evaluations,
@@ -117,7 +154,7 @@ def run_case(case: Case, seed: int = 0, **options) -> CaseOutcome:
 
 def run_selfcheck(include_slow: bool = False, seed: int = 0, extra_cases: list[Case] | None = None,
                   **options) -> list[CaseOutcome]:
-    cases = standard_cases(include_slow) + list(extra_cases or [])
+    cases = standard_cases(include_slow) + catalogue_cases(include_slow) + list(extra_cases or [])
     return [run_case(c, seed=seed, **options) for c in cases]
 
 
@@ -131,7 +168,8 @@ def format_table(outcomes: list[CaseOutcome]) -> str:
     lines.append("-" * 120)
     passed = sum(o.passed for o in outcomes)
     lines.append(f"{passed} of {len(outcomes)} cases within max(0.1 kT, 4·stderr) of the reference (all values in kT).")
-    lines.append("References: closed forms (Tuckerman 2010, OUP) and scipy.integrate.quad.")
+    lines.append("References: closed forms (Tuckerman 2010, OUP), scipy.integrate.quad/dblquad, and for catalogue "
+                 "files their [reference] source (e.g. the Kolafa & Nezbeda 1994 LJ equation of state).")
     lines.append("")
     lines.append(CAUTION)
     return "\n".join(lines)

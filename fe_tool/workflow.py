@@ -19,6 +19,7 @@ from . import diagnostics as diag
 from .estimators import bar, crooks_gaussian, jarzynski, work_overlap
 from .inputs import validate_inputs
 from .path import LinearPath, Path, make_schedule
+from .progress import progress_bar, progress_enabled
 from .planning import PILOT_SCALES, PilotPoint, length_profile, plan_protocol, schedule_from_profile
 from .results import Result
 from .sampling import StateSamples, end_target, sample_state
@@ -136,14 +137,6 @@ def _check_options(options: dict) -> Options:
     return opts
 
 
-def _progress_enabled(flag: bool | None) -> bool:
-    import os
-    import sys
-    if os.environ.get("FE_TOOL_PROGRESS", "") == "0":
-        return False
-    return sys.stderr.isatty() if flag is None else bool(flag)
-
-
 def run_estimators(work_forward: np.ndarray, work_reverse: np.ndarray, seed: int) -> tuple[dict, float]:
     """All switching estimators (reduced units) and the forward/reverse overlap."""
     rng = np.random.default_rng(seed)
@@ -204,7 +197,7 @@ def _schedule_pilot(path, key, samples_a, samples_b, precision_a, precision_b, c
 
 def _prepare_control(opts, key, path, samples_a, samples_b, lams, step_sizes, precision_a, precision_b, remaining,
                      probe):
-    """Train, decide on or reuse a control; returns (drift, lams, step_sizes, report, outcome-or-None)."""
+    """Train, decide on or reuse a control; returns (drift, lams, step_sizes, report, outcome)."""
     from .control import ControlOutcome, LoadedControl, load_control, prepare_control
 
     settings = dict(opts.control_settings or {})
@@ -218,10 +211,9 @@ def _prepare_control(opts, key, path, samples_a, samples_b, lams, step_sizes, pr
         mode = opts.control
     outcome = prepare_control(key, path, jnp.asarray(samples_a.samples), jnp.asarray(samples_b.samples),
                               jnp.asarray(lams), jnp.asarray(step_sizes), precision_a, precision_b, mode=mode,
-                              budget=int(remaining), progress=_progress_enabled(opts.progress), **settings)
+                              budget=int(remaining), progress=progress_enabled(opts.progress), **settings)
     report = outcome.to_dict()
-    return (outcome.drift, np.asarray(outcome.lams), np.asarray(outcome.step_sizes), report,
-            outcome if outcome.control is not None else None)
+    return outcome.drift, np.asarray(outcome.lams), np.asarray(outcome.step_sizes), report, outcome
 
 
 def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int = 0, **options) -> Result:
@@ -289,16 +281,20 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
     warnings: list[str] = []
 
     # ---- end states
+    stages = progress_bar(6, "ΔF by switching", enabled=opts.progress, unit="stage", leave=False)
     t0 = time.perf_counter()
     sampled = {}
     for end, k_end, x0 in (("a", k_sample_a, x_a), ("b", k_sample_b, x_b)):
+        stages.set_postfix_str(f"sampling end state {end.upper()}")
         s = sample_state(k_end, end_target(path, end), x0, samples=samples_wanted, chains=chains,
                          evaluation_budget=int(sampling_share), precondition=opts.precondition,
                          name=f"end state {end.upper()}")
         sampled[end] = s
         cost[f"sampling_{end}"] = s.evaluations
         warnings.extend(s.warnings)
+        stages.update(1)
     timings["sampling"] = time.perf_counter() - t0
+    stages.set_postfix_str("pilot switching")
     samples_a, samples_b = sampled["a"], sampled["b"]
     precision_a = jnp.asarray(1.0 / samples_a.preconditioner)
     precision_b = jnp.asarray(1.0 / samples_b.preconditioner)
@@ -342,15 +338,17 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
     lams = schedule_for(steps)
     step_sizes = _switching_step_sizes(lams, samples_a, samples_b, step_scale)
     timings["pilot"] = time.perf_counter() - t0
+    stages.update(1)
 
     # ---- learned control (optional): trains within the remaining budget
     drift, control_report = None, None
+    stages.set_postfix_str("control")
     if opts.control not in ("none", None):
         t0 = time.perf_counter()
         drift, lams, step_sizes, control_report, trained = _prepare_control(
             opts, k_control, path, samples_a, samples_b, lams, step_sizes, precision_a, precision_b, remaining,
             x_a)
-        cost["training"] = int(control_report["evaluations"])
+        cost["training"] = int(control_report["training_evaluations"])
         if opts.trajectories is None:
             left = remaining - cost["training"]
             trajectories = int(min(available, max(2, left // (2 * per_point * (steps + 1)))))
@@ -361,7 +359,9 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
         warnings.extend(control_report.get("warnings", []))
         timings["training"] = time.perf_counter() - t0
 
+    stages.update(1)
     # ---- switching both ways
+    stages.set_postfix_str(f"switching {trajectories} trajectories × {steps} steps, both ways")
     t0 = time.perf_counter()
     batch = min(SWITCH_BATCH, trajectories)
     work_forward, inc_forward, _ = run_in_batches(path, drift, k_forward, samples_a.samples[:trajectories], lams,
@@ -373,6 +373,7 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
     work_forward = np.where(mark_diverged(work_forward), np.nan, work_forward)
     work_reverse = np.where(mark_diverged(work_reverse), np.nan, work_reverse)
     timings["switching"] = time.perf_counter() - t0
+    stages.update(1)
 
     # ---- estimators and diagnostics
     t0 = time.perf_counter()
@@ -391,6 +392,8 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
     if not (samples_a.equilibrated and samples_b.equilibrated):
         flagged = True
     timings["estimators"] = time.perf_counter() - t0
+    stages.update(1)
+    stages.close()
     timings["total"] = time.perf_counter() - t_start
 
     # mean forward work per step (kT) over trajectories that did not diverge: where along λ work is done
