@@ -3,38 +3,17 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import math
 from typing import Any
 
 import numpy as np
 
 from .estimators.record import Estimate
+from .jsonable import to_jsonable
 
 CAUTION = (
     "Caution: simulated free energies depend on the energy model and on sampling; "
     "they need experimental validation before they inform design or safety decisions."
 )
-
-
-def _jsonable(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return [_jsonable(v) for v in value.tolist()]
-    if isinstance(value, (np.floating, float)):
-        v = float(value)
-        return v if math.isfinite(v) else str(v)
-    if isinstance(value, (np.integer,)):
-        return int(value)
-    if isinstance(value, (np.bool_,)):
-        return bool(value)
-    if isinstance(value, Estimate):
-        return _jsonable(value.to_dict())
-    if dataclasses.is_dataclass(value) and not isinstance(value, type):
-        return _jsonable(dataclasses.asdict(value))
-    return value
 
 
 @dataclasses.dataclass
@@ -118,7 +97,7 @@ class Result:
         }
         if self.reference is not None:
             out["reference"] = self.reference
-        return _jsonable(out)
+        return to_jsonable(out)
 
     def to_json(self, path) -> None:
         with open(path, "w") as fh:

@@ -61,7 +61,7 @@ def _zero_drift(x, lam):
     return jnp.zeros_like(x)
 
 
-def _preconditioner(lam_mid, precision_a, precision_b):
+def interpolated_preconditioner(lam_mid, precision_a, precision_b):
     """M(λ) = 1 / ((1 − λ) P_A + λ P_B): interpolated inverse-variance preconditioner."""
     return 1.0 / ((1.0 - lam_mid) * precision_a + lam_mid * precision_b)
 
@@ -76,7 +76,7 @@ def make_transition(path: Path, control: ControlFunction | None):
 
     def transition(noise, state: SwitchState, lam_from, lam_to, step, precision_a, precision_b, sign):
         lam_mid = 0.5 * (lam_from + lam_to)
-        m = _preconditioner(lam_mid, precision_a, precision_b)
+        m = interpolated_preconditioner(lam_mid, precision_a, precision_b)
         x = state.position
         z = x + step * (-m * state.grad + sign * state.drift) + jnp.sqrt(2.0 * step * m) * noise
         u_z, g_z = path.energy_and_grad(z, lam_to)
@@ -91,7 +91,7 @@ def make_transition(path: Path, control: ControlFunction | None):
 
 def switch(path: Path, control: ControlFunction | None, key, starts: Array, lams: Array,
            step_sizes: Array, precision_a: Array, precision_b: Array, direction="forward",
-           checkpoint: bool = False):
+           checkpoint: bool = False, record: bool = False):
     """Run switching trajectories; a pure, differentiable function (no jit inside).
 
     Args:
@@ -106,9 +106,12 @@ def switch(path: Path, control: ControlFunction | None, key, starts: Array, lams
         direction: ``"forward"`` (A→B), ``"reverse"`` (B→A), or the sign +1.0 / −1.0
             as a (possibly traced) number, so one compilation serves both directions.
         checkpoint: recompute each step in the backward pass (memory independent of K).
+        record: also return every visited point with its energy and gradient.
 
     Returns:
-        (works (T,), increments (T, K) in the direction's own step order, final positions).
+        (works (T,), increments (T, K) in the direction's own step order, final positions);
+        with ``record``: (works, increments, positions (T, K+1, *shape), energies (T, K+1),
+        gradients (T, K+1, *shape)), all in the run's own time order.
     """
     if isinstance(direction, str):
         if direction not in ("forward", "reverse"):
@@ -131,13 +134,21 @@ def switch(path: Path, control: ControlFunction | None, key, starts: Array, lams
         key_k, lam_from, lam_to, step = inputs
         noise = jax.random.normal(key_k, states.position.shape, states.position.dtype)
         states, increment = step_fn(noise, states, lam_from, lam_to, step, precision_a, precision_b, sign)
-        return states, increment
+        visited = (states.position, states.energy, states.grad) if record else None
+        return states, (increment, visited)
 
     if checkpoint:
         body = jax.checkpoint(body)
+    first = states
     keys = jax.random.split(key, lams.shape[0] - 1)
-    states, increments = jax.lax.scan(body, states, (keys, lams[:-1], lams[1:], step_sizes))
-    return states.work, increments.T, states.position
+    states, (increments, visited) = jax.lax.scan(body, states, (keys, lams[:-1], lams[1:], step_sizes))
+    if not record:
+        return states.work, increments.T, states.position
+    positions, energies, grads = visited
+    positions = jnp.concatenate([first.position[None], positions]).swapaxes(0, 1)
+    energies = jnp.concatenate([first.energy[None], energies]).T
+    grads = jnp.concatenate([first.grad[None], grads]).swapaxes(0, 1)
+    return states.work, increments.T, positions, energies, grads
 
 
 @eqx.filter_jit

@@ -40,7 +40,7 @@ import jax
 import jax.numpy as jnp
 
 from ..path import Path
-from ..switching import SwitchState, make_transition, switch
+from ..switching import interpolated_preconditioner, switch
 from ..types import Array
 from .networks import Control
 from .protocol import Protocol, bind_control
@@ -116,34 +116,7 @@ def record_paths(path: Path, control, key, starts, lams, step_sizes, precision_a
         works (T,), increments (T, K), positions (T, K+1, *shape), energies (T, K+1),
         gradients (T, K+1, *shape) — all in the run's own time order (reverse runs B→A).
     """
-    if direction not in ("forward", "reverse"):
-        raise ValueError(f"direction must be 'forward' or 'reverse', got {direction!r}")
-    phi = _zero_drift if control is None else control
-    transition = make_transition(path, control)
-    sign = 1.0 if direction == "forward" else -1.0
-    if direction == "reverse":
-        lams, step_sizes = lams[::-1], step_sizes[::-1]
-
-    def start(x):
-        u, g = path.energy_and_grad(x, lams[0])
-        return SwitchState(x, u, g, phi(x, lams[0]), jnp.zeros((), u.dtype))
-
-    states = jax.vmap(start)(starts)
-    step_fn = jax.vmap(transition, in_axes=(0, 0, None, None, None, None, None, None))
-
-    def body(states, inputs):
-        key_k, lam_from, lam_to, step = inputs
-        noise = jax.random.normal(key_k, states.position.shape, states.position.dtype)
-        states, increment = step_fn(noise, states, lam_from, lam_to, step, precision_a, precision_b, sign)
-        return states, (increment, states.position, states.energy, states.grad)
-
-    first = states
-    keys = jax.random.split(key, lams.shape[0] - 1)
-    states, (increments, positions, energies, grads) = jax.lax.scan(body, states, (keys, lams[:-1], lams[1:], step_sizes))
-    positions = jnp.concatenate([first.position[None], positions]).swapaxes(0, 1)
-    energies = jnp.concatenate([first.energy[None], energies]).T
-    grads = jnp.concatenate([first.grad[None], grads]).swapaxes(0, 1)
-    return states.work, increments.T, positions, energies, grads
+    return switch(path, control, key, starts, lams, step_sizes, precision_a, precision_b, direction, record=True)
 
 
 def score_path(path: Path, control, positions, lams, step_sizes, precision_a, precision_b,
@@ -174,7 +147,7 @@ def score_path(path: Path, control, positions, lams, step_sizes, precision_a, pr
     phi = _zero_drift if control is None else control
     drifts = jax.vmap(phi)(positions, lams)
     lam_mid = 0.5 * (lams[:-1] + lams[1:])
-    m = jax.vmap(lambda lm: jnp.broadcast_to(1.0 / ((1.0 - lm) * precision_a + lm * precision_b), shape))(lam_mid)
+    m = jax.vmap(lambda lm: jnp.broadcast_to(interpolated_preconditioner(lm, precision_a, precision_b), shape))(lam_mid)
     eps = step_sizes.reshape((-1,) + (1,) * len(shape))
     x0, x1 = positions[:-1], positions[1:]
     forward_mean = x0 + eps * (-m * grads[:-1] + sign * drifts[:-1])

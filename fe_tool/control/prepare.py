@@ -29,6 +29,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from ..jsonable import to_jsonable
 from ..path import Path
 from .networks import Control, ControlScales, build_control
 from .objectives import OBJECTIVES, Controller, TrainData, TrainSetup
@@ -66,6 +67,8 @@ class ControlOutcome:
         predicted_variance_ratio: (s_after/s_before)² · budget/(budget − evaluations).
         mode, objective, training_steps (K_train), optimiser_steps, skipped_steps,
         stop_reason, settings: what was run.
+        warnings: plain sentences about problems (non-finite works, skipped steps, a control
+            that does not pay for itself); empty when nothing looked wrong.
     """
 
     control: Control | None
@@ -91,6 +94,7 @@ class ControlOutcome:
     training_lams: np.ndarray
     training_step_sizes: np.ndarray
     settings: dict = dataclasses.field(default_factory=dict)
+    warnings: list = dataclasses.field(default_factory=list)
 
     @property
     def drift(self):
@@ -115,20 +119,7 @@ class ControlOutcome:
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-able summary (no network weights; use :func:`save_control` for those)."""
-        def clean(v):
-            if isinstance(v, dict):
-                return {str(k): clean(x) for k, x in v.items()}
-            if isinstance(v, (list, tuple, np.ndarray)):
-                return [clean(x) for x in np.asarray(v).tolist()] if isinstance(v, np.ndarray) else [clean(x) for x in v]
-            if isinstance(v, (float, np.floating)):
-                return float(v) if math.isfinite(v) else str(float(v))
-            if isinstance(v, (np.integer,)):
-                return int(v)
-            if isinstance(v, np.bool_):
-                return bool(v)
-            return v
-
-        return clean({
+        return to_jsonable({
             "mode": self.mode, "objective": self.objective, "kept": self.kept, "decision": self.decision,
             "control": None if self.control is None else {"kind": self.control.kind, **self.control.hyperparameters()},
             "training_evaluations": self.evaluations, "optimiser_steps": self.optimiser_steps,
@@ -139,6 +130,7 @@ class ControlOutcome:
             "dissipation_before": {"lambda": self.midpoints_before, "work_per_step": self.dissipation_before},
             "dissipation_after": {"lambda": self.midpoints_after, "work_per_step": self.dissipation_after},
             "lams": self.lams, "step_sizes": self.step_sizes, "history": self.history, "settings": self.settings,
+            "warnings": list(self.warnings),
         })
 
 
@@ -421,6 +413,21 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
                          f"(against {nonfinite_before} without).")
     if report is not None and report.skipped_steps:
         decision += f" {report.skipped_steps} optimiser steps had non-finite loss or gradient and were skipped."
+    warnings = []
+    if kept and control is not None:
+        for direction in ("forward", "reverse"):
+            bad = after[direction]["nonfinite"]
+            if bad:
+                warnings.append(f"control: {bad} of {n_valid} {direction} validation works were non-finite with the "
+                                f"learned control (without it: {before[direction]['nonfinite']}); they are counted as "
+                                "diverged trajectories")
+    if report is not None and report.skipped_steps:
+        warnings.append(f"control: {report.skipped_steps} of {report.optimiser_steps} optimiser steps had a non-finite "
+                        "loss or gradient and were skipped")
+    if mode == "learned" and ratio >= 1.0:
+        warnings.append(f"control: the {what} is predicted to give {ratio:.2g}× the BAR variance of uncontrolled "
+                        "switching with the whole budget (its training does not pay for itself here); "
+                        "control='auto' would have dropped it")
 
     if kept:
         protocol_changed = learn_schedule or learn_steps != "none" or warm_lams is not None
@@ -442,4 +449,4 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
         skipped_steps=report.skipped_steps if report is not None else 0,
         stop_reason=report.stop_reason if report is not None else "reused without training",
         training_lams=lams_after, training_step_sizes=np.asarray(model.protocol.step_sizes(), dtype=np.float64),
-        settings=settings)
+        settings=settings, warnings=warnings)

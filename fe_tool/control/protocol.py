@@ -11,7 +11,8 @@ where ``a`` are the schedule logits, ℓ(λ) is the starting log step size
 interpolated along λ (so a step keeps the size its λ calls for when the schedule
 moves), ``o`` a learned log-offset (one global value or one per step) and
 δ = ln 4 bounds it smoothly: steps stay within a factor 4 of the sampler-derived
-ones, where the unadjusted Langevin kernel is known to be stable.
+ones (far larger steps make the unadjusted Langevin kernel unstable; an optimiser
+step that still produces non-finite works is skipped).
 
 :class:`ProtocolDrift` turns a control velocity v(x, λ) (dx/dλ) into the drift φ
 of :func:`fe_tool.switching.switch` on a given protocol:

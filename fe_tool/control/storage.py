@@ -18,11 +18,11 @@ import dataclasses
 import datetime
 import json
 from importlib import metadata
-from typing import Any
 
 import equinox as eqx
 import numpy as np
 
+from ..jsonable import to_jsonable
 from ..path import Path
 from .networks import CONTROL_KINDS, Control
 from .protocol import bind_control, resample_schedule, resample_step_sizes
@@ -36,24 +36,6 @@ def _version(name: str) -> str:
         return metadata.version(name)
     except metadata.PackageNotFoundError:  # pragma: no cover - editable installs without metadata
         return "unknown"
-
-
-def _jsonable(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _jsonable(value.tolist())
-    if isinstance(value, (np.floating,)):
-        return float(value)
-    if isinstance(value, (np.integer,)):
-        return int(value)
-    if isinstance(value, (np.bool_,)):
-        return bool(value)
-    if isinstance(value, (str, int, float, bool)) or value is None:
-        return value
-    return str(value)
 
 
 @dataclasses.dataclass
@@ -135,7 +117,7 @@ def save_control(file, outcome_or_control, lams=None, step_sizes=None, fingerpri
         "probe": None if probe is None else np.asarray(probe, dtype=np.float64).tolist(),
         "lams": None if lams is None else np.asarray(lams, dtype=np.float64).tolist(),
         "step_sizes": None if step_sizes is None else np.asarray(step_sizes, dtype=np.float64).tolist(),
-        "settings": _jsonable(settings or {}),
+        "settings": to_jsonable(settings or {}),
         "versions": {"fe_tool": _version("fe_tool"), "jax": _version("jax"), "equinox": _version("equinox")},
         "saved": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds"),
     }

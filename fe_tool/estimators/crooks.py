@@ -13,7 +13,6 @@ any raises ``ValueError`` unless ``nonfinite="drop"`` (then counted in ``details
 """
 from __future__ import annotations
 
-import math
 from typing import Any
 
 import numpy as np

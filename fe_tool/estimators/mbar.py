@@ -34,7 +34,6 @@ as a large variance rather than being cut away by a threshold.
 from __future__ import annotations
 
 import dataclasses
-import math
 from typing import Any
 
 import numpy as np
