@@ -105,21 +105,21 @@ def _summarise(name: str, values: np.ndarray, errors: np.ndarray, costs: np.ndar
 def format_table(rows: Sequence[dict], exact: float | None, units: str = "energy units") -> str:
     """The comparison table as text (one line per route)."""
     if exact is not None:
-        head = (f"{'route':<14s} {'runs':>4s} {'mean':>9s} {'bias':>8s} {'RMSE':>8s} {'⟨σ⟩':>8s} "
+        head = (f"{'route':<18s} {'runs':>4s} {'mean':>9s} {'bias':>8s} {'RMSE':>8s} {'⟨σ⟩':>8s} "
                 f"{'cover95':>7s} {'cost':>10s} {'1/(RMSE²·cost)':>15s} {'relative':>8s}")
     else:
-        head = (f"{'route':<14s} {'runs':>4s} {'mean':>9s} {'spread':>8s} {'⟨σ⟩':>8s} {'vs consensus':>12s} "
+        head = (f"{'route':<18s} {'runs':>4s} {'mean':>9s} {'spread':>8s} {'⟨σ⟩':>8s} {'vs consensus':>12s} "
                 f"{'cost':>10s} {'1/(spread²·cost)':>17s} {'relative':>8s}")
     lines = [f"ΔF comparison ({units}); exact ΔF = {exact:.4f}" if exact is not None
              else f"ΔF comparison ({units}); no exact ΔF: spread over seeds and agreement between routes", head]
     for r in rows:
         fail = f"  ({r['failed']} failed)" if r["failed"] else ""
         if exact is not None:
-            lines.append(f"{r['route']:<14s} {r['runs']:>4d} {r['mean']:9.4f} {r.get('bias', math.nan):8.4f} "
+            lines.append(f"{r['route']:<18s} {r['runs']:>4d} {r['mean']:9.4f} {r.get('bias', math.nan):8.4f} "
                          f"{r.get('rmse', math.nan):8.4f} {r['mean_error']:8.4f} {r.get('coverage', math.nan):7.2f} "
                          f"{r['cost']:10.3g} {r['efficiency']:15.4g} {r['relative_efficiency']:8.2f}{fail}")
         else:
-            lines.append(f"{r['route']:<14s} {r['runs']:>4d} {r['mean']:9.4f} {r['spread']:8.4f} {r['mean_error']:8.4f} "
+            lines.append(f"{r['route']:<18s} {r['runs']:>4d} {r['mean']:9.4f} {r['spread']:8.4f} {r['mean_error']:8.4f} "
                          f"{r.get('consensus_z', math.nan):12.2f} {r['cost']:10.3g} {r['efficiency']:17.4g} "
                          f"{r['relative_efficiency']:8.2f}{fail}")
     return "\n".join(lines)

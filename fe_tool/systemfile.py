@@ -24,6 +24,67 @@ Layout (every key is checked; an error names the key and what it expects)::
 
 Energies in the file are in ``units``; ``kT`` follows from ``temperature`` via the
 CODATA 2018 molar gas constant (see :mod:`fe_tool.units`).
+
+**Particle systems** (a file with a ``[particles]`` table). The unit system is required:
+``units = "kJ/mol-nm-K"`` (energies kJ/mol, lengths nm, charges e, ``temperature`` in K) or
+``units = "reduced"`` (Lennard-Jones units ε, σ, k_B = 1; give ``kT`` = T*). State A is the
+system as written; ``[change]`` says how B differs, and :mod:`fe_tool.alchemy` builds the path::
+
+    units = "kJ/mol-nm-K"
+    temperature = 300.0
+
+    [particles]                       # inline, or  file = "start.xyz"  (XYZ: count, comment, "type x y z")
+    types = ["P", "S", "S"]
+    positions = [[0.5, 0.5, 0.5], [0.9, 0.5, 0.5], [0.5, 0.9, 0.5]]
+
+    [box]                             # optional: orthorhombic periodic cell; omit for open space
+    edges = [1.6, 1.6, 1.6]
+
+    [types.P]                         # per-type nonbonded parameters (needed with [nonbonded])
+    sigma = 0.3                       #   length
+    epsilon = 1.0                     #   energy (0: no LJ)
+    charge = 0.5                      #   e (reduced charge in reduced units)
+
+    [nonbonded]                       # optional; all keys but cutoff have defaults
+    cutoff = 0.7                      # ≤ half the shortest box edge
+    shift = false                     # truncated-and-shifted LJ
+    tail_correction = true            # analytic LJ tail for the box (needs shift = false)
+    reaction_field_dielectric = 78.0  # optional (inf = conducting); else plain cutoff Coulomb
+    dielectric = 1.0
+    mixing = "lorentz-berthelot"      # or "geometric"
+    exclude_bonded = 3                # exclude pairs ≤ this many bonds apart (0..3)
+    scale_14_lj = 0.5                 # scaled 1-4 pairs added back (needs exclude_bonded = 3)
+    scale_14_coulomb = 0.8333
+    exclusions = [[0, 2]]             # extra excluded pairs
+    soft_core_alpha = 0.5             # Beutler et al. 1994 α for decoupling
+    pair_search = "all_pairs"         # or "neighbour_list" (rebuilt in every energy call; large N)
+
+    [[topology.bonds]]                # groups: name (unique), atoms (0-based rows), parameters,
+    name = "bonds"                    #   state = "both" (default) | "a" | "b"
+    atoms = [[0, 1], [1, 2]]
+    length = 0.153                    # one value or one per row
+    force_constant = 5000.0           # U = ½ k (r − r0)²
+    [[topology.angles]]               # atoms [i, j, k]; angle in degrees; k per rad²
+    [[topology.torsions]]             # form = "ryckaert_bellemans" (coefficients C0..) or
+                                      #   "periodic" (force_constants, multiplicities, phases in degrees)
+    [[restraints]]                    # form = "position" (atoms, force_constant, reference?, radius?)
+    name = "anchor"                   #   or "distance" (atoms [[i, j]], target | lower + upper, force_constant)
+    form = "position"
+    atoms = [0]
+    force_constant = 500.0
+    state = "a"                       # present in A only: "this restraint is released" in B
+
+    [change]                          # how B differs from A (at least one difference)
+    decouple = [0]                    # these particles' nonbonded interactions are switched off
+    electrostatics_share = 0.5        # λ ≤ 0.5 switches charges off, then soft-core LJ (default: 0.5 if charged)
+    stage_shape = "smooth"            # or "linear"
+    [[change.parameters]]             # "this group's parameters become …" (same shapes; interpolated)
+    group = "backbone_torsion"
+    coefficients = [4.64, 6.08, -6.56, -1.53, 13.12, -15.75]
+
+Direction: ΔF = F_B − F_A, so for a decoupling file (A coupled, B decoupled) the excess
+chemical potential (or solvation free energy) is μ_ex = −ΔF. Results are labelled with the
+energy unit ("kJ/mol", or "ε (reduced LJ units)"); ``System.unit_system`` keeps the full name.
 """
 from __future__ import annotations
 
@@ -268,7 +329,8 @@ def _integer_rows(value: Any, key: str, width: int, n: int) -> np.ndarray:
     if width == 1 and arr.ndim == 1:
         arr = arr[:, None]
     if arr.ndim != 2 or arr.shape[1] != width or arr.size == 0 or arr.dtype.kind not in "iu":
-        shape = "a list of particle indices" if width == 1 else f"a list of [{', '.join('i j k l'.split()[:width])}] index rows"
+        letters = ", ".join("ijkl"[:width])
+        shape = "a list of particle indices" if width == 1 else f"a list of [{letters}] index rows"
         _fail(key, f"{shape} (integers, 0-based)", value)
     if arr.min() < 0 or arr.max() >= n:
         _fail(key, f"particle indices from 0 to {n - 1}", value)
@@ -517,7 +579,8 @@ def _nonbonded(data: dict, types: list[str], n: int, unit_system: str, box, bond
               "(the analytic tail is for a truncated, unshifted LJ fluid)", True)
     rf = table.get("reaction_field_dielectric")
     if rf is not None:
-        rf = _number(table, "reaction_field_dielectric", where, positive=True) if not (isinstance(rf, float) and np.isinf(rf)) else float("inf")
+        conducting = isinstance(rf, float) and np.isinf(rf) and rf > 0  # TOML `inf`: a conducting boundary
+        rf = float("inf") if conducting else _number(table, "reaction_field_dielectric", where, positive=True)
         if cutoff is None:
             _fail(f"{where}.reaction_field_dielectric", "a cutoff as well (a reaction field acts beyond the cutoff)", rf)
     dielectric = _number(table, "dielectric", where, default=1.0, positive=True)

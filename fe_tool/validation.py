@@ -115,6 +115,8 @@ def standard_cases(include_slow: bool = False) -> list[Case]:
 
 QUICK_CATALOGUE = ("mueller_brown",)
 """Catalogue files (stems) in the quick self-check; the rest need ``include_slow=True``."""
+BENCHMARK_ONLY = ("lj_fluid_decoupling_256",)
+"""Catalogue files too slow for any self-check (run them with ``benchmarks/``)."""
 
 
 def catalogue_cases(include_slow: bool = False) -> list[Case]:
@@ -128,7 +130,7 @@ def catalogue_cases(include_slow: bool = False) -> list[Case]:
     field_duplicates = {"harmonic_3d", "double_well_1d", "harmonic_anisotropic_50d", "restraint_release_kjmol"}
     cases = []
     for file in list_systems():
-        if file.stem in field_duplicates:  # same closed forms as the standard cases above
+        if file.stem in field_duplicates or file.stem in BENCHMARK_ONLY:  # duplicates / benchmark size
             continue
         if not include_slow and file.stem not in QUICK_CATALOGUE:
             continue
