@@ -12,10 +12,8 @@ import os
 import pathlib
 from typing import Any, Iterable, Sequence
 
-import matplotlib
-
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
 import numpy as np  # noqa: E402
 
 __all__ = ["plot_batch_summary", "plot_convergence", "plot_dissipation", "plot_overlap_matrix", "plot_result",
@@ -29,8 +27,11 @@ def _target(target):
     """(figure or None, axes) for a path/None (new figure) or an existing Axes."""
     if target is not None and hasattr(target, "plot") and hasattr(target, "figure"):
         return None, target
-    fig, ax = plt.subplots(figsize=(6.4, 4.4))
-    return fig, ax
+    # a bare Figure with its own Agg canvas: no global backend switch, so notebooks keep
+    # their inline backend and scripts need no display
+    fig = Figure(figsize=(6.4, 4.4))
+    FigureCanvasAgg(fig)
+    return fig, fig.add_subplot()
 
 
 def _finish(fig, ax, target):
@@ -41,7 +42,6 @@ def _finish(fig, ax, target):
     path = pathlib.Path(target if target is not None else "figure.png")
     path.parent.mkdir(parents=True, exist_ok=True)
     fig.savefig(path, dpi=110)
-    plt.close(fig)
     return path
 
 
@@ -260,7 +260,7 @@ def plot_result(result, folder) -> list[pathlib.Path]:
     history = extras.get("training_history") or extras.get("history")
     if history:
         written.append(plot_training(history, folder / "training.png"))
-    overlap = extras.get("overlap_matrix")
+    overlap = extras.get("overlap_matrix", extras.get("overlap"))
     if overlap is not None:
         written.append(plot_overlap_matrix(overlap, folder / "overlap_matrix.png"))
     return written

@@ -375,6 +375,10 @@ def sample_state(
         # burn-in may use BURN_IN_SHARE of the budget; the rest is for production
         if spent + chains * BLOCK_STEPS * per_call > BURN_IN_SHARE * evaluation_budget:
             break
+    if not np.isfinite(tau):  # the budget ended burn-in after one block: judge the whole trace
+        traces = _observables(energies, pos_trace or None)
+        tau = float(max([autocorrelation_time(traces[0])] + [autocorrelation_time(t) * record for t in traces[1:]]))
+        rhat = max(split_mixing_statistic(t) for t in traces)
     burn_in = warmup_steps + len(energies) * BLOCK_STEPS
 
     # ---- stuck chains
@@ -391,13 +395,22 @@ def sample_state(
 
     # ---- production: every chain continues, sampled every ceil(tau) steps
     stride = max(1, int(math.ceil(tau))) if np.isfinite(tau) else 1
-    # as many decorrelated samples as the rest of the budget affords (at least MIN_SAMPLES)
-    affordable = (evaluation_budget - spent) // (stride * per_call)
+    # as many decorrelated samples as the rest of the budget affords; when not even
+    # MIN_SAMPLES fit at stride ⌈τ⌉, take MIN_SAMPLES at a shorter stride and say so
+    remaining = max(evaluation_budget - spent, 0)
+    affordable = remaining // (stride * per_call)
     if affordable < samples:
-        samples = int(max(MIN_SAMPLES, affordable))
-        if samples < MIN_SAMPLES * 2:
-            warnings.append(f"{name}: the budget affords only {samples} decorrelated samples "
-                            f"(autocorrelation time {tau:.0f} steps); raise the budget for more trajectories.")
+        if affordable >= MIN_SAMPLES:
+            samples = int(affordable)
+            if samples < MIN_SAMPLES * 2:
+                warnings.append(f"{name}: the budget affords only {samples} decorrelated samples "
+                                f"(autocorrelation time {tau:.0f} steps); raise the budget for more trajectories.")
+        else:
+            samples = MIN_SAMPLES
+            stride = max(1, int(remaining // (MIN_SAMPLES * per_call)))
+            warnings.append(f"{name}: the budget left {remaining:,} evaluations for production, too few for "
+                            f"{MIN_SAMPLES} samples one autocorrelation time ({tau:.0f} steps) apart; they are "
+                            f"{stride} steps apart and correlated, so error bars are too small. Raise the budget.")
     per_chain = int(math.ceil(samples / len(healthy)))
     record_every = stride
     collected = []

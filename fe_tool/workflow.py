@@ -26,6 +26,7 @@ from .sampling import StateSamples, end_target, sample_state
 from .switching import run_in_batches, switching_evaluations
 
 DEFAULT_BUDGET = 1_000_000
+DEFAULT_CHAINS = 64
 PILOT_TRAJECTORIES = 64
 PILOT_STEPS = 32
 SWITCH_BATCH = 128
@@ -64,7 +65,8 @@ class Options:
             ``"power"`` or an explicit λ array (K+1 values).
         step_scale: switching step relative to the end-state samplers' adapted step;
             ``None`` chooses it (with K) from pilot runs, see :mod:`fe_tool.planning`.
-        chains: parallel sampling chains per end state.
+        chains: parallel sampling chains per end state (default 64; the windows route sizes
+            them from the budget).
         precondition: diagonal preconditioning (``None``: on for vector configurations).
         path: a :class:`~fe_tool.path.Path` replacing the linear mixing of the energies.
         control: ``"none"`` (plain annealed switching), ``"learned"`` (train a control drift and
@@ -90,7 +92,7 @@ class Options:
     trajectories: int | None = None
     schedule: Any = "adaptive"
     step_scale: float | None = None
-    chains: int = 64
+    chains: int | None = None
     precondition: bool | None = None
     path: Path | None = None
     control: Any = "none"
@@ -125,7 +127,7 @@ def _check_options(options: dict) -> Options:
         if switching_only:
             raise ValueError(f"option(s) {switching_only} belong to the switching route; drop them or use "
                              "method='switching'")
-    if opts.chains < 4:
+    if opts.chains is not None and opts.chains < 4:
         raise ValueError(f"chains must be at least 4 (chain agreement is measured between chains), got {opts.chains}")
     if isinstance(opts.control, str) and opts.control not in CONTROL_MODES:
         import os
@@ -243,13 +245,13 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
         from .windows import estimate_windows
 
         return estimate_windows(energy_a, energy_b, x_a, x_b, kT=kT, seed=seed,
-                                budget=opts.budget or DEFAULT_BUDGET, windows=opts.windows, spacing=opts.spacing,
+                                budget=opts.budget or DEFAULT_BUDGET, windows=opts.windows, spacing=opts.spacing, chains=opts.chains,
                                 exchange=opts.exchange, path=opts.path, units=opts.units, reference=opts.reference)
     path = opts.path if opts.path is not None else LinearPath(energy_a, energy_b, kT)
     per_point = path.evaluations_per_point(1)
     fixed = opts.switching_steps is not None and opts.trajectories is not None
     budget = opts.budget if opts.budget is not None else (None if fixed else DEFAULT_BUDGET)
-    chains = opts.chains
+    chains = opts.chains or DEFAULT_CHAINS
     if fixed:
         samples_wanted = opts.trajectories
     else:
