@@ -33,9 +33,12 @@ def _enable_compilation_cache() -> None:
 
 _enable_compilation_cache()
 
+from .alchemy import ParameterInterpolationPath, SoftCoreDecouplingPath  # noqa: E402
 from .path import LinearPath, Path, make_schedule  # noqa: E402
 from .results import CAUTION, Result  # noqa: E402
+from .systemfile import System, load_system  # noqa: E402
 from .workflow import Options, estimate  # noqa: E402
 
-__all__ = ["CAUTION", "LinearPath", "Options", "Path", "Result", "estimate", "make_schedule"]
+__all__ = ["CAUTION", "LinearPath", "Options", "ParameterInterpolationPath", "Path", "Result",
+           "SoftCoreDecouplingPath", "System", "estimate", "load_system", "make_schedule"]
 __version__ = "0.1.0"

@@ -69,7 +69,8 @@ class Options:
             them from the budget).
         precondition: diagonal preconditioning (``None``: on for vector configurations).
         path: a :class:`~fe_tool.path.Path` replacing the linear mixing of the energies.
-        control: ``"none"`` (plain annealed switching), ``"learned"`` (train a control drift and
+        control: ``"auto"`` (default; measured best at the default budget, see the README),
+            ``"none"`` (plain annealed switching), ``"learned"`` (train a control drift and
             the λ schedule, training counted in the budget), ``"auto"`` (train a short pilot and
             keep the control only if the measured gain in work spread pays for its cost), a
             saved control file, or a :class:`~fe_tool.control.ControlOutcome` /
@@ -95,7 +96,7 @@ class Options:
     chains: int | None = None
     precondition: bool | None = None
     path: Path | None = None
-    control: Any = "none"
+    control: Any = "auto"
     control_settings: dict | None = None
     save_control: str | None = None
     units: str = "energy units"
@@ -123,7 +124,7 @@ def _check_options(options: dict) -> Options:
         raise ValueError(f"method={opts.method!r}: choose one of {list(METHODS)}")
     if opts.method == "windows":
         switching_only = [n for n in ("switching_steps", "trajectories", "step_scale", "save_control")
-                          if getattr(opts, n) is not None] + (["control"] if opts.control not in ("none", None) else [])
+                          if getattr(opts, n) is not None] + (["control"] if opts.control not in ("none", "auto", None) else [])
         if switching_only:
             raise ValueError(f"option(s) {switching_only} belong to the switching route; drop them or use "
                              "method='switching'")
