@@ -18,6 +18,7 @@ Reference: Vargas, Padhy, Blessing & Nüsken 2024, "Transport meets variational
 inference: controlled Monte Carlo diffusions", ICLR.
 """
 from .networks import CONTROL_KINDS, Control, ControlScales, MLPControl, build_control, lambda_embedding, register_control
+from .pair_force import PairForceControl, pair_force_settings
 from .objectives import (OBJECTIVES, Controller, TrainData, TrainSetup, jeffreys_loss, log_variance_loss, path_kl_loss,
                          record_paths, score_path)
 from .prepare import ControlOutcome, prepare_control
@@ -27,9 +28,9 @@ from .training import TrainingReport, evaluate, make_optimiser, run_training, tr
 
 __all__ = [
     "CONTROL_KINDS", "Control", "ControlOutcome", "ControlScales", "Controller", "LoadedControl", "MLPControl",
-    "OBJECTIVES", "Protocol", "ProtocolDrift", "TrainData", "TrainSetup", "TrainingReport", "bind_control",
+    "OBJECTIVES", "PairForceControl", "Protocol", "ProtocolDrift", "TrainData", "TrainSetup", "TrainingReport", "bind_control",
     "build_control", "evaluate", "jeffreys_loss", "lambda_embedding", "level_rates", "load_control",
-    "log_variance_loss", "make_optimiser", "path_kl_loss", "prepare_control", "record_paths", "register_control",
+    "log_variance_loss", "make_optimiser", "pair_force_settings", "path_kl_loss", "prepare_control", "record_paths", "register_control",
     "resample_schedule", "resample_step_sizes", "run_training", "save_control", "score_path", "system_fingerprint",
     "train_step", "work_summary",
 ]
