@@ -204,6 +204,9 @@ def _prepare_control(opts, key, path, samples_a, samples_b, lams, step_sizes, pr
     from .control import ControlOutcome, LoadedControl, load_control, prepare_control
 
     settings = dict(opts.control_settings or {})
+    if getattr(path, "nonbonded", None) is not None and "network" not in settings and "warm_start" not in settings:
+        # particle systems with a nonbonded model: the permutation- and rotation-equivariant pair-force control
+        settings["network"] = {"kind": "pair_force"}
     reuse = opts.control
     if isinstance(reuse, str) and reuse not in CONTROL_MODES:
         reuse = load_control(reuse, expected_fingerprint=path.fingerprint_probe(np.asarray(probe)), path=path)

@@ -28,9 +28,9 @@ from .training import TrainingReport, evaluate, make_optimiser, run_training, tr
 
 __all__ = [
     "CONTROL_KINDS", "Control", "ControlOutcome", "ControlScales", "Controller", "LoadedControl", "MLPControl",
-    "OBJECTIVES", "PairForceControl", "Protocol", "ProtocolDrift", "TrainData", "TrainSetup", "TrainingReport", "bind_control",
-    "build_control", "evaluate", "jeffreys_loss", "lambda_embedding", "level_rates", "load_control",
-    "log_variance_loss", "make_optimiser", "pair_force_settings", "path_kl_loss", "prepare_control", "record_paths", "register_control",
-    "resample_schedule", "resample_step_sizes", "run_training", "save_control", "score_path", "system_fingerprint",
-    "train_step", "work_summary",
+    "OBJECTIVES", "PairForceControl", "Protocol", "ProtocolDrift", "TrainData", "TrainSetup", "TrainingReport",
+    "bind_control", "build_control", "evaluate", "jeffreys_loss", "lambda_embedding", "level_rates", "load_control",
+    "log_variance_loss", "make_optimiser", "pair_force_settings", "path_kl_loss", "prepare_control", "record_paths",
+    "register_control", "resample_schedule", "resample_step_sizes", "run_training", "save_control", "score_path",
+    "system_fingerprint", "train_step", "work_summary",
 ]

@@ -118,7 +118,7 @@ class PairForceControl(Control):
         frequencies: Fourier frequencies of the λ embedding.
         scale: output length scale s (default r_c / 4).
         path: a decoupling path to take ``alchemical``, ``box`` and ``cutoff`` from
-            (explicit arguments win); not stored.
+            (explicit arguments win; other paths only give their ``box``); not stored.
 
     Example:
         >>> c = PairForceControl((8, 3), None, alchemical=[0], cutoff=3.0, key=jax.random.key(0))
@@ -145,11 +145,13 @@ class PairForceControl(Control):
         if len(self.shape) != 2:
             raise ValueError(f"PairForceControl needs particle configurations of shape (N, d); got {self.shape}")
         n, dim = self.shape
-        if path is not None:
+        if path is not None and getattr(path, "nonbonded", None) is not None:
             defaults = pair_force_settings(path, cutoff)
             alchemical = defaults["alchemical"] if alchemical is None else alchemical
             box = defaults["box"] if box is None else box
             cutoff = defaults["cutoff"] if cutoff is None else cutoff
+        elif path is not None and box is None and getattr(path, "box", None) is not None:
+            box = [float(b) for b in np.asarray(path.box).reshape(-1)]
         if alchemical is None:
             raise ValueError("give alchemical=[indices of the changing particles] (or path=)")
         alchemical = tuple(sorted({int(i) for i in np.asarray(alchemical).reshape(-1)}))
@@ -181,8 +183,8 @@ class PairForceControl(Control):
                                (jnp.zeros_like(last.weight), jnp.zeros_like(last.bias)))
         mask = np.zeros(n, bool)
         mask[list(alchemical)] = True
-        bound = np.ones(n * dim) if scales is None else np.broadcast_to(np.asarray(scales.bound, np.float64), (n * dim,))
-        bound = bound.reshape(n, dim)
+        bound = np.ones(n * dim) if scales is None else np.asarray(scales.bound, np.float64)
+        bound = np.broadcast_to(bound, (n * dim,)).reshape(n, dim)
         per_class = np.empty((n, dim))
         for group in (mask, ~mask):
             if group.any():

@@ -32,6 +32,7 @@ import numpy as np
 from ..jsonable import to_jsonable
 from ..path import Path
 from .networks import Control, ControlScales, build_control
+from .pair_force import pair_force_settings
 from .objectives import OBJECTIVES, Controller, TrainData, TrainSetup
 from .protocol import Protocol, bind_control, midpoints, resample_schedule, resample_step_sizes
 from .training import evaluate, evaluate_recorded, make_optimiser, run_training, work_summary
@@ -222,7 +223,8 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
         max_optimiser_steps: hard limit on steps.
         check_every: optimiser steps between validation checks (default: validation ≈ 10% of cost).
         patience: checks without improvement of the predicted variance before stopping.
-        network: MLP hyperparameters (``width``, ``depth``, ``frequencies``).
+        network: control kind and hyperparameters: ``{"kind": "mlp"|"pair_force", ...}`` (MLP:
+            ``width``, ``depth``, ``frequencies``; pair force: see :class:`PairForceControl`).
         drift_bound_factor: the drift is bounded smoothly at this multiple of the RMS
             preconditioned force M∇u along uncontrolled paths.
 
@@ -323,7 +325,11 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
     elif learn_network:
         bound = _drift_bound(np.asarray(grads0), lams_t, precision_a, precision_b, drift_bound_factor, shape)
         scales = ControlScales.from_samples(np.asarray(samples_a), np.asarray(samples_b), bound)
-        control = build_control("mlp", shape, scales, key=key_net, **(network or {}))
+        hyper = dict(network or {})
+        kind = hyper.pop("kind", "mlp")
+        if kind == "pair_force":  # alchemical particles, box and cutoff come from the path
+            hyper = {**pair_force_settings(path), **hyper}
+        control = build_control(kind, shape, scales, key=key_net, **hyper)
     else:
         control = None
     protocol = Protocol.from_schedule(start_lams, start_eps, per_step_offsets=(learn_steps == "per_step"))
