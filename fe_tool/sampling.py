@@ -205,7 +205,7 @@ def autocorrelation_time(trace: np.ndarray, window_factor: float = 5.0) -> float
     The autocovariance is centred on the grand mean over all chains (so chains that
     disagree show up as long correlation) and averaged over chains; the sum is cut
     by Sokal's automatic window (smallest M with M ≥ c·τ(M), c = 5; Sokal 1997,
-    "Monte Carlo methods in statistical mechanics", Cargèse lectures [mem]).
+    "Monte Carlo methods in statistical mechanics: foundations and new algorithms", in Functional Integration, NATO ASI Series B 361, Plenum [mem]).
     Returns ``len(trace)`` when no window fits (the trace is too short).
     """
     trace = np.asarray(trace, dtype=np.float64)
