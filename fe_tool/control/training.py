@@ -27,8 +27,6 @@ from __future__ import annotations
 import dataclasses
 import functools
 import math
-import os
-import sys
 
 import equinox as eqx
 import jax
@@ -36,17 +34,11 @@ import jax.numpy as jnp
 import numpy as np
 import optax
 
+from ..progress import progress_enabled
 from ..switching import switch
 from .objectives import Controller, TrainData, TrainSetup, record_paths
 
 CONSECUTIVE_SKIPS_TO_STOP = 25
-
-
-def progress_enabled(flag: bool | None) -> bool:
-    """Progress bars: never when ``FE_TOOL_PROGRESS=0``; by default only in a terminal."""
-    if os.environ.get("FE_TOOL_PROGRESS", "") == "0":
-        return False
-    return sys.stderr.isatty() if flag is None else bool(flag)
 
 
 @functools.lru_cache(maxsize=64)
