@@ -92,3 +92,20 @@ def check_agreement(estimates: dict[str, Estimate], headline: str, threshold: fl
                             f"{r.delta_f:.3f} kT, {gap / scale:.1f} combined errors).")
                 serious = True
     return msgs, serious
+
+
+def check_chain_correlation(estimate: Estimate) -> list[str]:
+    """Warn when works from the same sampling chain are correlated beyond the jackknife's own noise.
+
+    Reads ``stderr_chain_jackknife``, ``chain_error_ratio`` and ``jackknife_noise`` from the
+    estimate's details (see :func:`fe_tool.estimators.grouped.with_grouped_error`); a ratio above
+    1 + 2·noise is more than the grouped error's sampling spread explains.
+    """
+    ratio = estimate.details.get("chain_error_ratio", float("nan"))
+    noise = estimate.details.get("jackknife_noise", float("nan"))
+    if not (math.isfinite(ratio) and math.isfinite(noise)) or ratio <= 1.0 + 2.0 * noise:
+        return []
+    return [f"works started from the same sampling chain are correlated: grouping them by chain gives an error "
+            f"{ratio:.2f}× the independent-work error, so the reported error is the chain-grouped jackknife one. "
+            "An end state has a slow mode the sampler's thinning did not resolve; more chains (or starts in "
+            "every basin) give more independent trajectories."]

@@ -15,9 +15,16 @@ fixed-length blocks (one compiled ``lax.scan`` per block shape):
    configurations a diagonal preconditioner is estimated from the chains' variance
    in doubling windows;
 2. burn-in: blocks are run until the integrated autocorrelation time τ of the
-   recorded observables (reduced energy; the coordinates for vector systems) is
-   below a tenth of the judged half of the trace and the chains agree (split potential-scale reduction
-   below 1.1, Gelman & Rubin 1992 / Vehtari et al. 2021), or the budget share runs out;
+   recorded observables is below a tenth of the judged half of the trace and the chains
+   agree (split potential-scale reduction below 1.1, Gelman & Rubin 1992 / Vehtari et al.
+   2021), or the budget share runs out. Watched: the reduced energy (every step), the
+   coordinates for vector systems (every 5 steps) and ∂u/∂λ of the path at the target's λ
+   (every :data:`DERIVATIVE_EVERY` steps, inside the compiled block; its cost, one path
+   evaluation per chain per record, is counted). ∂u/∂λ is what the estimate depends on:
+   a slow mode that moves it (e.g. trans/gauche hops under a torsion change) can leave the
+   energy fast-decorrelating, and would otherwise pass unseen. Chains may start from a
+   start set (round-robin); chains that begin in different basins disagree in the split-R̂
+   check until they have mixed, which catches slow modes no chain has crossed yet;
 3. production: each chain is continued and sampled every ⌈τ⌉ steps, as many samples
    as the rest of the budget affords (up to the number asked for).
 
@@ -35,7 +42,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from .path import Path
+from .path import LinearPath, Path
 from .types import Array, Configuration
 
 TARGET_ACCEPTANCE = 0.574
@@ -45,6 +52,7 @@ EQUILIBRATION_TAUS = 10  # the judged second half of the burn-in must span this 
 MIXING_LIMIT = 1.1  # split potential-scale reduction below which chains agree (Gelman et al., "Bayesian Data Analysis", classic threshold)
 BURN_IN_SHARE = 0.7  # of a call's budget; production sampling gets the rest
 MIN_SAMPLES = 64
+DERIVATIVE_EVERY = 10  # burn-in records ∂u/∂λ every this many steps (cost: one path evaluation per chain each time)
 
 
 class ChainState(NamedTuple):
@@ -76,6 +84,26 @@ class Target(eqx.Module):
     def evaluations(self) -> int:
         """Energy evaluations per energy-and-gradient call."""
         return self.path.end_evaluations() if self.end is not None else self.path.evaluations_per_point(1)
+
+    def _linear_end(self) -> bool:
+        return self.end is not None and isinstance(self.path, LinearPath)
+
+    def lambda_derivative(self, x: Configuration, u_x: Array) -> Array:
+        """∂u/∂λ of the path at this target's λ, at ``x`` whose reduced energy here is ``u_x``.
+
+        The integrand of thermodynamic integration, and the observable that ΔF depends on.
+        At an end of the linear path it is u_B − u_A, which needs only the other end's
+        energy; otherwise one forward-mode derivative of ``path.energy`` in λ.
+        """
+        if self._linear_end():
+            other = self.path.end_energy(x, "b" if self.end == "a" else "a")
+            return other - u_x if self.end == "a" else u_x - other
+        lam = jnp.asarray(self.lam, dtype=jnp.result_type(float))
+        return jax.jvp(lambda l: self.path.energy(x, l), (lam,), (jnp.ones_like(lam),))[1]
+
+    def derivative_evaluations(self) -> int:
+        """Energy evaluations counted per :meth:`lambda_derivative` call."""
+        return self.path.end_evaluations() if self._linear_end() else self.path.evaluations_per_point(1)
 
 
 def end_target(path: Path, end: str) -> Target:
@@ -115,20 +143,28 @@ def mala_kernel(target: Target):
 
 @eqx.filter_jit
 def run_block(target: Target, key, states: ChainState, log_step, preconditioner, adapt_rate,
-              steps: int, record_every: int):
+              steps: int, record_every: int, observe_every: int = 0):
     """Advance all chains ``steps`` MALA steps.
 
     The step size ε = exp(log_step) is shared by all chains; when ``adapt_rate`` > 0
     it follows a Robbins–Monro update towards :data:`TARGET_ACCEPTANCE` after every
     step. Returns the new states, the final log step, the mean log step over the
-    block, per-chain mean acceptance, the energy trace (steps, chains) and positions
-    recorded every ``record_every`` steps (or ``None`` when ``record_every`` is 0).
+    block, per-chain mean acceptance, the energy trace (steps, chains), positions
+    recorded every ``record_every`` steps (or ``None`` when ``record_every`` is 0) and
+    ∂u/∂λ (:meth:`Target.lambda_derivative`) recorded every ``observe_every`` steps,
+    shape (steps // observe_every, chains) (or ``None`` when ``observe_every`` is 0).
+    ``observe_every`` must be a multiple of ``record_every`` when both are given.
     """
     kernel = jax.vmap(mala_kernel(target), in_axes=(0, 0, None, None))
+    derivative = jax.vmap(target.lambda_derivative)
     chains = states.energy.shape[0]
-    every = max(record_every, 1)
-    if steps % every:
-        raise ValueError(f"steps ({steps}) must be a multiple of record_every ({record_every})")
+    every = record_every or observe_every or 1
+    group = observe_every or every
+    if group % every:
+        raise ValueError(f"observe_every ({observe_every}) must be a multiple of record_every ({record_every})")
+    if steps % group:
+        raise ValueError(f"steps ({steps}) must be a multiple of record_every ({record_every}) "
+                         f"and observe_every ({observe_every})")
 
     def step(carry, key_step):
         states, log_step = carry
@@ -142,11 +178,20 @@ def run_block(target: Target, key, states: ChainState, log_step, preconditioner,
         carry, outputs = jax.lax.scan(step, carry, keys)
         return carry, (outputs, carry[0].position if record_every else None)
 
-    keys = jax.random.split(key, steps).reshape((steps // every, every) + key.shape)
-    (states, log_step_end), ((acc, energies, log_steps), recorded) = jax.lax.scan(record, (states, log_step), keys)
-    flat = lambda a: a.reshape((steps,) + a.shape[2:])  # noqa: E731
+    def observe(carry, keys):
+        # every `group` steps: ∂u/∂λ at the current positions (costs one path evaluation per chain)
+        carry, outputs = jax.lax.scan(record, carry, keys)
+        du = derivative(carry[0].position, carry[0].energy) if observe_every else None
+        return carry, (outputs, du)
+
+    keys = jax.random.split(key, steps).reshape((steps // group, group // every, every) + key.shape)
+    (states, log_step_end), (((acc, energies, log_steps), recorded), du) = jax.lax.scan(
+        observe, (states, log_step), keys)
+    flat = lambda a: a.reshape((steps,) + a.shape[3:])  # noqa: E731
     acc, energies, log_steps = flat(acc), flat(energies), flat(log_steps)
-    return states, log_step_end, jnp.mean(log_steps), jnp.mean(acc, axis=0), energies, recorded
+    if recorded is not None:
+        recorded = recorded.reshape((steps // every,) + recorded.shape[2:])
+    return states, log_step_end, jnp.mean(log_steps), jnp.mean(acc, axis=0), energies, recorded, du
 
 
 @dataclasses.dataclass
@@ -164,8 +209,12 @@ class StateSamples:
         chains, stuck_chains: chain counts.
         burn_in_steps: steps per chain discarded before production.
         equilibrated: True when the burn-in criteria were met within the budget.
-        mixing_statistic: split potential-scale reduction of the energy (1 = well mixed).
+        mixing_statistic: worst split potential-scale reduction of the watched observables (1 = well mixed).
         warnings: plain-language problems found.
+        autocorrelation_times: τ (steps) per watched observable in the judged burn-in trace:
+            ``"energy"``, ``"du_dlambda"`` (∂u/∂λ at the target's λ; absent when it is constant
+            there) and ``"coordinates"`` (slowest coordinate, vector systems).
+        derivative_evaluations: the part of ``evaluations`` spent on ∂u/∂λ.
     """
 
     samples: np.ndarray
@@ -181,6 +230,8 @@ class StateSamples:
     equilibrated: bool
     mixing_statistic: float
     warnings: list[str]
+    autocorrelation_times: dict[str, float] = dataclasses.field(default_factory=dict)
+    derivative_evaluations: int = 0
 
     def diagnostics(self) -> dict:
         return {
@@ -193,7 +244,9 @@ class StateSamples:
             "burn_in_steps": self.burn_in_steps,
             "equilibrated": self.equilibrated,
             "mixing_statistic": self.mixing_statistic,
+            "autocorrelation_times": dict(self.autocorrelation_times),
             "evaluations": self.evaluations,
+            "derivative_evaluations": self.derivative_evaluations,
         }
 
 
@@ -251,14 +304,27 @@ def split_mixing_statistic(trace: np.ndarray) -> float:
 
 # ------------------------------------------------------------------ the driver
 
-def _observables(energies: list[np.ndarray], positions: list[np.ndarray] | None):
-    """List of [step, chain] traces used for τ and mixing."""
-    traces = [np.concatenate(energies, axis=0)]
+def _observables(energies: list[np.ndarray], positions: list[np.ndarray] | None,
+                 derivatives: list[np.ndarray] | None, record: int, observe: int):
+    """``(name, trace[step, chain], spacing in steps)`` of every watched observable."""
+    traces = [("energy", np.concatenate(energies, axis=0), 1)]
     if positions:
-        pos = np.concatenate(positions, axis=0)  # (steps, chains, d)
+        pos = np.concatenate(positions, axis=0)  # (recordings, chains, ...)
         pos = pos.reshape(pos.shape[0], pos.shape[1], -1)
-        traces.extend(pos[:, :, i] for i in range(pos.shape[2]))
+        traces.extend(("coordinates", pos[:, :, i], record) for i in range(pos.shape[2]))
+    if derivatives:
+        traces.append(("du_dlambda", np.concatenate(derivatives, axis=0), observe))
     return traces
+
+
+def _judge(traces) -> tuple[float, float, dict[str, float]]:
+    """Slowest τ (steps), worst split-R̂, and τ (steps) per observable kind."""
+    taus: dict[str, float] = {}
+    rhat = 0.0
+    for name, trace, spacing in traces:
+        taus[name] = max(taus.get(name, 0.0), autocorrelation_time(trace) * spacing)
+        rhat = max(rhat, split_mixing_statistic(trace))
+    return float(max(taus.values())), float(rhat), taus
 
 
 def sample_state(
@@ -273,6 +339,7 @@ def sample_state(
     min_warmup: int = 200,
     name: str = "end state",
     initial_step_size: float | None = None,
+    starts: Configuration | None = None,
 ) -> StateSamples:
     """Draw ``samples`` equilibrium configurations of ``target`` starting from ``start``.
 
@@ -280,6 +347,10 @@ def sample_state(
         key: PRNG key.
         target: the state to sample (reduced energy).
         start: one configuration where every chain starts (a tiny jitter separates them).
+        starts: optional start set, k configurations stacked on a first axis, each of
+            ``start``'s shape; chain i then starts at ``starts[i mod k]`` (``start`` only
+            fixes the shape). Starts in different basins make chains disagree in the
+            split-R̂ check until they have mixed, so a slow mode cannot pass unseen.
         samples: number of configurations to return.
         chains: number of parallel chains.
         evaluation_budget: most energy evaluations this call may spend; when burn-in
@@ -293,12 +364,22 @@ def sample_state(
     if precondition is None:
         precondition = start.ndim == 1
     per_call = target.evaluations()
+    per_derivative = target.derivative_evaluations()
     key_jitter, key_run = jax.random.split(key)
     keys = iter(jax.random.split(key_run, 10_000))
-    positions = start[None] + 1e-3 * jax.random.normal(key_jitter, (chains,) + start.shape, start.dtype)
+    if starts is None:
+        origins = jnp.broadcast_to(start, (chains,) + start.shape)
+    else:
+        starts = jnp.asarray(starts, dtype=start.dtype)
+        if starts.ndim != start.ndim + 1 or starts.shape[1:] != start.shape or starts.shape[0] < 1:
+            raise ValueError(f"starts must stack configurations of shape {start.shape} on a first axis, "
+                             f"got shape {starts.shape}")
+        origins = starts[jnp.arange(chains) % starts.shape[0]]  # round-robin over the chains
+    positions = origins + 1e-3 * jax.random.normal(key_jitter, (chains,) + start.shape, start.dtype)
     states = jax.vmap(target.energy_and_grad)(positions)
     states = ChainState(positions, states[0], states[1])
     spent = chains * per_call
+    derivative_spent = 0
     preconditioner = jnp.ones(start.shape, start.dtype)
     record = 5 if precondition else 0
     warnings: list[str] = []
@@ -310,10 +391,15 @@ def sample_state(
         initial_step_size = float(np.clip(dim / max(gnorm2, 1e-12), 1e-6, 1.0)) * 0.1
     log_step = jnp.log(jnp.asarray(initial_step_size, start.dtype))
 
-    def block(states, log_step, adapt_rate, record_every):
-        nonlocal spent
-        out = run_block(target, next(keys), states, log_step, preconditioner, adapt_rate, BLOCK_STEPS, record_every)
-        spent += chains * BLOCK_STEPS * per_call
+    def block_cost(observe_every=0):
+        return chains * (BLOCK_STEPS * per_call + (BLOCK_STEPS // observe_every * per_derivative if observe_every else 0))
+
+    def block(states, log_step, adapt_rate, record_every, observe_every=0):
+        nonlocal spent, derivative_spent
+        out = run_block(target, next(keys), states, log_step, preconditioner, adapt_rate, BLOCK_STEPS, record_every,
+                        observe_every)
+        spent += block_cost(observe_every)
+        derivative_spent += block_cost(observe_every) - block_cost(0)
         return out
 
     # ---- warm-up: step size (and preconditioner, in doubling windows)
@@ -323,7 +409,7 @@ def sample_state(
     while done_blocks < warm_blocks or (precondition and window <= 4):
         recorded = []
         for _ in range(window if precondition else warm_blocks):
-            states, log_step, mean_log_step, acc, _, pos = block(states, log_step, 0.05, record)
+            states, log_step, mean_log_step, acc, _, pos, _ = block(states, log_step, 0.05, record)
             done_blocks += 1
             if pos is not None:
                 recorded.append(np.asarray(pos))
@@ -343,42 +429,46 @@ def sample_state(
         if not precondition or spent > evaluation_budget * 0.5:
             break
     # one more adaptation block with the final preconditioner
-    states, log_step, mean_log_step, acc, _, _ = block(states, log_step, 0.05, 0)
+    states, log_step, mean_log_step, acc, _, _, _ = block(states, log_step, 0.05, 0)
     log_step = mean_log_step
     warmup_steps = (spent // (chains * per_call))
 
-    # ---- burn-in with measurement
+    # ---- burn-in with measurement: the energy every step, coordinates every `record` steps
+    # (vector systems) and ∂u/∂λ, the observable ΔF depends on, every `observe` steps
     energies: list[np.ndarray] = []
     pos_trace: list[np.ndarray] = []
+    du_trace: list[np.ndarray] = []
     acc_blocks: list[np.ndarray] = []
-    tau, rhat, equilibrated = float("nan"), float("nan"), False
+    observe = DERIVATIVE_EVERY
+    tau, rhat, equilibrated, taus = float("nan"), float("nan"), False, {}
     while True:
-        states, _, _, acc, energy_trace, pos = block(states, log_step, 0.0, record)
+        states, _, _, acc, energy_trace, pos, du = block(states, log_step, 0.0, record, observe)
         energies.append(np.asarray(energy_trace))
         acc_blocks.append(np.asarray(acc))
         if pos is not None:
             pos_trace.append(np.asarray(pos))
+        if du is not None:
+            du = np.asarray(du)
+            if len(du_trace) == 0 and np.all(du == du.flat[0]):
+                # ∂u/∂λ is exactly constant here (e.g. a smooth stage shape at an end of a decoupling path):
+                # it carries no information, so stop paying for it
+                observe = 0
+            else:
+                du_trace.append(du)
         half = len(energies) // 2
         if half >= 1:
             # judge the second half of the trace; the first half is burn-in
-            late_e = energies[-half:]
-            late_p = pos_trace[-half:] if pos_trace else None
-            traces = _observables(late_e, late_p)
-            taus = [autocorrelation_time(t) for t in traces]
-            # coordinates are recorded every `record` steps
-            taus = [taus[0]] + [t * record for t in taus[1:]]
-            tau = float(max(taus))
-            rhat = max(split_mixing_statistic(t) for t in traces)
+            late_d = du_trace[-half:] if len(du_trace) >= half else None
+            tau, rhat, taus = _judge(_observables(energies[-half:], pos_trace[-half:] if pos_trace else None,
+                                                  late_d, record, observe))
             if half * BLOCK_STEPS >= EQUILIBRATION_TAUS * tau and rhat < MIXING_LIMIT:
                 equilibrated = True
                 break
         # burn-in may use BURN_IN_SHARE of the budget; the rest is for production
-        if spent + chains * BLOCK_STEPS * per_call > BURN_IN_SHARE * evaluation_budget:
+        if spent + block_cost(observe) > BURN_IN_SHARE * evaluation_budget:
             break
     if not np.isfinite(tau):  # the budget ended burn-in after one block: judge the whole trace
-        traces = _observables(energies, pos_trace or None)
-        tau = float(max([autocorrelation_time(traces[0])] + [autocorrelation_time(t) * record for t in traces[1:]]))
-        rhat = max(split_mixing_statistic(t) for t in traces)
+        tau, rhat, taus = _judge(_observables(energies, pos_trace or None, du_trace or None, record, observe))
     burn_in = warmup_steps + len(energies) * BLOCK_STEPS
 
     # ---- stuck chains
@@ -419,7 +509,7 @@ def sample_state(
     stride_block = stride * max(1, BLOCK_STEPS // stride)
     while sum(c.shape[0] for c in collected) < per_chain:
         out = run_block(target, next(keys), states, log_step, preconditioner, 0.0, stride_block, record_every)
-        states, _, _, acc, _, pos = out
+        states, _, _, acc, _, pos, _ = out
         spent += chains * stride_block * per_call
         collected.append(np.asarray(pos))
         prod_acc.append(np.asarray(acc))
@@ -452,4 +542,6 @@ def sample_state(
         equilibrated=equilibrated,
         mixing_statistic=float(rhat),
         warnings=warnings,
+        autocorrelation_times={k: float(v) for k, v in taus.items()},
+        derivative_evaluations=int(derivative_spent),
     )

@@ -36,6 +36,9 @@ system as written; ``[change]`` says how B differs, and :mod:`fe_tool.alchemy` b
     [particles]                       # inline, or  file = "start.xyz"  (XYZ: count, comment, "type x y z")
     types = ["P", "S", "S"]
     positions = [[0.5, 0.5, 0.5], [0.9, 0.5, 0.5], [0.5, 0.9, 0.5]]
+    starts = [[[...], [...], [...]],  # optional start set: k configurations (n rows each) where the
+              [[...], [...], [...]]]  #   end-state samplers begin, round-robin over the chains (both
+                                      #   ends); give one per slow basin. Default: every chain at positions
 
     [box]                             # optional: orthorhombic periodic cell; omit for open space
     edges = [1.6, 1.6, 1.6]
@@ -129,6 +132,7 @@ class System:
     path: Any = None  # a fe_tool.path.Path for particle systems (replaces linear mixing)
     unit_system: str = ""  # "kJ/mol-nm-K" or "reduced" for particle systems; "" for field files
     particles: dict[str, Any] | None = None  # types, box and counts of a particle system (for reports)
+    starts: np.ndarray | None = None  # (k, n, 3) start set of both end samplers ([particles] starts), or None
 
     def estimate(self, **overrides):
         """Run :func:`fe_tool.estimate` with the file's settings, updated by ``overrides``."""
@@ -141,6 +145,9 @@ class System:
             unit_label = "ε (reduced LJ units)" if self.unit_system == "reduced" else "reduced energy units"
         if self.path is not None:
             options.setdefault("path", self.path)
+        if self.starts is not None:
+            options.setdefault("starts_a", self.starts)
+            options.setdefault("starts_b", self.starts)
         options.setdefault("units", unit_label)
         if self.reference is not None:
             options.setdefault("reference", self.reference)
@@ -394,11 +401,32 @@ def read_xyz(path: pathlib.Path, key: str = "particles.file") -> tuple[list[str]
     return types, np.asarray(positions, dtype=np.float64)
 
 
+def _start_set(data: dict, n: int) -> np.ndarray | None:
+    """``[particles] starts``: k ≥ 1 start configurations of n rows [x, y, z] each, or ``None``."""
+    table = data["particles"]
+    if "starts" not in table:
+        return None
+    value = table["starts"]
+    expected = (f"a list of start configurations, each a list of {n} rows [x, y, z] (one per particle), "
+                "e.g. starts = [[[x, y, z], ...], [[x, y, z], ...]]")
+    if not isinstance(value, list) or not value:
+        _fail("particles.starts", expected, value)
+    try:
+        arr = np.asarray(value, dtype=np.float64)
+    except (TypeError, ValueError):
+        _fail("particles.starts", expected, value)
+    if arr.ndim != 3 or arr.shape[1:] != (n, 3):
+        _fail("particles.starts", expected + f"; got an array of shape {arr.shape}", value)
+    if not np.all(np.isfinite(arr)):
+        _fail("particles.starts", "finite coordinates", value)
+    return arr
+
+
 def _particles(data: dict, folder: pathlib.Path) -> tuple[list[str], np.ndarray]:
     table = data["particles"]
     if not isinstance(table, dict):
         _fail("particles", "a table with 'file' (XYZ) or 'types' and 'positions'", table)
-    _check_keys(table, {"file", "types", "positions"}, "particles")
+    _check_keys(table, {"file", "types", "positions", "starts"}, "particles")
     if "file" in table:
         if "positions" in table or "types" in table:
             _fail("particles", "either 'file' or inline 'types' and 'positions', not both", sorted(table))
@@ -649,6 +677,7 @@ def _parse_particle_system(data: dict, source: str) -> System:
     folder = pathlib.Path(source).parent if source != "<dict>" else pathlib.Path(".")
     types, positions = _particles(data, folder)
     n = len(types)
+    starts = _start_set(data, n)
 
     box = None
     if "box" in data:
@@ -759,7 +788,7 @@ def _parse_particle_system(data: dict, source: str) -> System:
         name=str(data.get("name", pathlib.Path(source).stem)), description=str(data.get("description", "")),
         energy_a=path.end_function("a"), energy_b=path.end_function("b"), start_a=positions, start_b=positions.copy(),
         kT=kT, units=energy_unit, reference=reference, settings=settings, source=source, path=path,
-        unit_system=unit_system, particles=particles,
+        unit_system=unit_system, particles=particles, starts=starts,
     )
 
 

@@ -162,7 +162,7 @@ def _produce(key, target, s: StateSamples, samples: int) -> int:
     states = jax.vmap(init_state, in_axes=(None, 0))(target, starts)
     stride = _stride(s)
     per_chain = int(math.ceil(samples / healthy))
-    _, _, _, acceptance, _, positions = run_block(
+    _, _, _, acceptance, _, positions, _ = run_block(
         target, key, states, jnp.log(jnp.asarray(s.step_size, starts.dtype)), jnp.asarray(s.preconditioner),
         0.0, stride * per_chain, stride)
     # positions are (per_chain, chains, ...): flattening interleaves the chains, so any prefix draws from all
@@ -282,6 +282,8 @@ def estimate_windows(
     path: Path | None = None,
     units: str = "energy units",
     reference: dict | None = None,
+    starts_a=None,
+    starts_b=None,
 ) -> Result:
     """ΔF = F_B − F_A from equilibrium samples of a ladder of λ windows (MBAR headline).
 
@@ -303,6 +305,9 @@ def estimate_windows(
             from ``start_b``) or ``"chain"`` (each window starts from a sample of the window
             before it, going inwards from both ends).
         path: a :class:`~fe_tool.path.Path` replacing the linear mixing.
+        starts_a, starts_b: optional start sets (k configurations stacked on a first axis) for
+            windows started from an end: chain i begins at ``starts[i mod k]`` (see
+            :func:`fe_tool.sampling.sample_state`).
         units: name of the energy unit; reference: optional known ΔF ``{"delta_f", "source",
             "tolerance"}`` in ``units``.
 
@@ -375,9 +380,12 @@ def estimate_windows(
             x0 = jnp.asarray(sampled[neighbour].samples[-1])
         else:
             x0 = x_a if lams[k] < 0.5 else x_b
+        from_end = window_starts == "ends" or k in (0, count - 1)
+        start_set = (starts_a if lams[k] < 0.5 else starts_b) if from_end else None
         # the sampler equilibrates (one sample per chain); production is sized below from what is left
         s = sample_state(window_keys[k], window_target(path, float(lams[k])), x0, samples=chains,
-                         chains=chains, evaluation_budget=equilibration_share, name=f"window {k} (λ = {lams[k]:.4g})")
+                         chains=chains, evaluation_budget=equilibration_share, name=f"window {k} (λ = {lams[k]:.4g})",
+                         starts=start_set)
         sampled[k] = s
         cost["sampling"] += s.evaluations
         warnings.extend(s.warnings)

@@ -16,7 +16,8 @@ import jax.numpy as jnp
 import numpy as np
 
 from . import diagnostics as diag
-from .estimators import bar, crooks_gaussian, jarzynski, work_overlap
+from .estimators import bar, crooks_gaussian, jarzynski, solve_bar, work_overlap
+from .estimators.grouped import with_grouped_error
 from .inputs import validate_inputs
 from .path import LinearPath, Path, make_schedule
 from .progress import progress_bar, progress_enabled
@@ -68,6 +69,13 @@ class Options:
         chains: parallel sampling chains per end state (default 64; the windows route sizes
             them from the budget).
         precondition: diagonal preconditioning (``None``: on for vector configurations).
+        starts_a, starts_b: optional start sets for the end-state samplers: k configurations
+            stacked on a first axis, each of ``start_a``'s shape (a list of configurations works
+            too); chain i of that end's sampler begins at ``starts[i mod k]``. Give starts in
+            every slow basin (e.g. trans, gauche+ and gauche− of a torsion): chains that begin in
+            different basins disagree in the sampler's chain-agreement check until they have
+            mixed, so a slow mode cannot pass the equilibration test unseen. Each configuration
+            is checked like ``start_a``. The windows route uses them for windows started from the ends.
         path: a :class:`~fe_tool.path.Path` replacing the linear mixing of the energies.
         control: ``"auto"`` (default; measured best at the default budget, see the README),
             ``"none"`` (plain annealed switching), ``"learned"`` (train a control drift and
@@ -95,6 +103,8 @@ class Options:
     step_scale: float | None = None
     chains: int | None = None
     precondition: bool | None = None
+    starts_a: Any = None
+    starts_b: Any = None
     path: Path | None = None
     control: Any = "auto"
     control_settings: dict | None = None
@@ -138,6 +148,30 @@ def _check_options(options: dict) -> Options:
     if opts.reference is not None and "delta_f" not in opts.reference:
         raise ValueError("reference must be a mapping with at least 'delta_f' (and ideally 'source', 'tolerance')")
     return opts
+
+
+def check_start_set(starts: Any, energy: Any, start: jnp.ndarray, label: str, kT: float) -> jnp.ndarray | None:
+    """Validate a start set (``starts_a``/``starts_b``): k ≥ 1 configurations of ``start``'s shape, finite energies."""
+    if starts is None:
+        return None
+    from .inputs import check_energy
+
+    try:
+        arr = np.asarray(starts, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise ValueError(f"starts_{label} must be a list of configurations (k × {start.shape}), "
+                         f"got {type(starts).__name__}") from None
+    if arr.ndim != start.ndim + 1 or arr.shape[1:] != tuple(start.shape) or arr.shape[0] < 1:
+        raise ValueError(f"starts_{label} must stack k ≥ 1 configurations of start_{label}'s shape {tuple(start.shape)} "
+                         f"on a first axis (shape (k, {', '.join(map(str, start.shape))})), got shape {arr.shape}")
+    if not np.all(np.isfinite(arr)):
+        raise ValueError(f"starts_{label} contains NaN or inf coordinates")
+    for i, x in enumerate(arr):
+        try:
+            check_energy(energy, jnp.asarray(x), label, kT)
+        except ValueError as err:
+            raise ValueError(f"starts_{label}[{i}]: {err}") from None
+    return jnp.asarray(arr)
 
 
 def run_estimators(work_forward: np.ndarray, work_reverse: np.ndarray, seed: int) -> tuple[dict, float]:
@@ -245,12 +279,15 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
     t_start = time.perf_counter()
     opts = _check_options(options)
     x_a, x_b, kT = validate_inputs(energy_a, energy_b, start_a, start_b, kT)
+    starts = {"a": check_start_set(opts.starts_a, energy_a, x_a, "a", kT),
+              "b": check_start_set(opts.starts_b, energy_b, x_b, "b", kT)}
     if opts.method == "windows":
         from .windows import estimate_windows
 
         return estimate_windows(energy_a, energy_b, x_a, x_b, kT=kT, seed=seed,
                                 budget=opts.budget or DEFAULT_BUDGET, windows=opts.windows, spacing=opts.spacing, chains=opts.chains,
-                                exchange=opts.exchange, path=opts.path, units=opts.units, reference=opts.reference)
+                                exchange=opts.exchange, path=opts.path, units=opts.units, reference=opts.reference,
+                                starts_a=starts["a"], starts_b=starts["b"])
     path = opts.path if opts.path is not None else LinearPath(energy_a, energy_b, kT)
     per_point = path.evaluations_per_point(1)
     fixed = opts.switching_steps is not None and opts.trajectories is not None
@@ -294,7 +331,7 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
         stages.set_postfix_str(f"sampling end state {end.upper()}")
         s = sample_state(k_end, end_target(path, end), x0, samples=samples_wanted, chains=chains,
                          evaluation_budget=int(sampling_share), precondition=opts.precondition,
-                         name=f"end state {end.upper()}")
+                         name=f"end state {end.upper()}", starts=starts[end])
         sampled[end] = s
         cost[f"sampling_{end}"] = s.evaluations
         warnings.extend(s.warnings)
@@ -386,7 +423,14 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
     msgs, flagged = diag.check_divergence(work_forward, work_reverse)
     warnings.extend(msgs)
     estimates, overlap = run_estimators(work_forward, work_reverse, seed)
+    if estimates["bar"].is_finite:
+        # trajectories i start from sample i, drawn from healthy chain i mod (healthy chains)
+        estimates["bar"] = with_grouped_error(
+            estimates["bar"], solve_bar, work_forward, work_reverse,
+            samples_a.chains - samples_a.stuck_chains, samples_b.chains - samples_b.stuck_chains)
     headline, reason = choose_headline(estimates, overlap, sampled)
+    if headline == "bar":
+        warnings.extend(diag.check_chain_correlation(estimates["bar"]))
     msgs, weight_info = diag.check_weights(work_forward, work_reverse)
     warnings.extend(msgs)
     msgs, serious = diag.check_overlap(overlap)

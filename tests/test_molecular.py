@@ -28,6 +28,7 @@ from fe_tool.energy import (
     lennard_jones_parameters,
     nonbonded_term,
 )
+from fe_tool.energy.bonded import dihedral_angles
 from fe_tool.systemfile import SystemFileError, load_system, parse_system
 
 SYSTEMS = pathlib.Path(__file__).resolve().parent.parent / "systems"
@@ -271,15 +272,37 @@ def _torsion_free_energy(coefficients, kT):
 
 
 def test_butane_torsion_reference_is_reproduced():
+    """Full Ryckaert–Bellemans barrier (≈ 5 kT) in A, ½ of it in B, at the file's settings."""
     system = load_system(SYSTEMS / "butane_torsion.toml")
     kT = GAS_CONSTANT_KJ * 300.0
-    full = [9.28, 12.16, -13.12, -3.06, 26.24, -31.5]  # Ryckaert & Bellemans 1978 (kJ/mol)
-    reference = _torsion_free_energy([0.25 * c for c in full], kT) - _torsion_free_energy([0.5 * c for c in full], kT)
+    full = [9.28, 12.16, -13.12, -3.06, 26.24, -31.5]  # Ryckaert & Bellemans 1978, Faraday Discuss. 66, 95 (kJ/mol)
+    # reference: scipy.integrate.quad over the dihedral, recomputed here (exact by separability)
+    reference = _torsion_free_energy([0.5 * c for c in full], kT) - _torsion_free_energy(full, kT)
     assert system.reference["delta_f"] == pytest.approx(reference, abs=1e-9)
-    result = system.estimate(budget=600_000, seed=5, progress=False)
+    assert system.starts is not None and system.starts.shape == (3, 4, 3)  # trans, gauche−, gauche+
+    phi = np.degrees(np.asarray(jax.vmap(lambda x: dihedral_angles(x, jnp.asarray([[0, 1, 2, 3]]))[0])(
+        jnp.asarray(system.starts))))
+    np.testing.assert_allclose(np.abs(phi), [180.0, 60.0, 60.0], atol=1e-3)  # coordinates given to 1e-6 nm
+    assert np.sign(phi[1]) != np.sign(phi[2])
+    result = system.estimate(seed=5, progress=False)
     assert result.units == "kJ/mol"
+    assert not result.flagged
+    sampling_a = result.diagnostics["sampling_a"]
+    assert sampling_a["equilibrated"]
+    # the trans/gauche hops are the slow mode: ∂u/∂λ sees them, the energy does not
+    assert sampling_a["autocorrelation_times"]["du_dlambda"] > 2 * sampling_a["autocorrelation_times"]["energy"]
     assert result.stderr < 0.1 * kT
     assert abs(result.delta_f - reference) <= max(0.1 * kT, 4 * result.stderr)
+
+
+def test_start_sets_in_particle_files_are_checked():
+    good = [[[0.5, 0.5, 0.5], [0.9, 0.5, 0.5], [0.5, 0.9, 0.5], [0.5, 0.5, 0.9]]] * 2
+    system = parse_system(_edit(("particles", "starts"), good))
+    assert system.starts.shape == (2, 4, 3)
+    assert parse_system(copy.deepcopy(PROBE)).starts is None
+    for bad in ([], good[0], [[[0.5, 0.5, 0.5]] * 3] * 2, [[["x", 0.5, 0.5]] * 4]):
+        with pytest.raises(SystemFileError, match=r"particles\.starts: expected a list of start configurations"):
+            parse_system(_edit(("particles", "starts"), bad))
 
 
 def test_selfcheck_includes_the_quick_catalogue_case():

@@ -5,121 +5,20 @@ Pure JAX functions of positions and parameters (:mod:`bonded`, :mod:`nonbonded`,
 :func:`assemble` to combine terms into one :class:`EnergyModel` with alchemical knobs
 ``lj_coupling`` and ``coulomb_scale``.
 """
-from fe_tool.energy.bonded import (
-    bond_angles,
-    bond_lengths,
-    dihedral_angles,
-    harmonic_angle_energy,
-    harmonic_bond_energy,
-    periodic_torsion_energy,
-    periodic_torsion_potential,
-    ryckaert_bellemans_energy,
-    ryckaert_bellemans_potential,
-)
-from fe_tool.energy.box import (
-    as_box,
-    box_volume,
-    check_cutoff,
-    displacement,
-    minimum_image,
-    pair_displacements,
-    safe_norm,
-    wrap_positions,
-)
-from fe_tool.energy.fields import (
-    MUELLER_BROWN_PARAMETERS,
-    double_well_energy,
-    harmonic_well_energy,
-    mueller_brown_energy,
-)
-from fe_tool.energy.model import (
-    ALL_PAIRS_LIMIT,
-    DistanceRestraints,
-    EnergyModel,
-    ExternalField,
-    HarmonicAngles,
-    HarmonicBonds,
-    Nonbonded,
-    PeriodicTorsions,
-    PositionRestraints,
-    RyckaertBellemansTorsions,
-    ScaledPairs,
-    Term,
-    alchemical_energy_function,
-    assemble,
-    energy_function,
-    nonbonded_term,
-)
-from fe_tool.energy.neighbours import (
-    NeighbourList,
-    NeighbourListBuilder,
-    NeighbourListOverflowError,
-    all_pairs,
-    check_neighbour_list,
-    count_pairs_within,
-    make_neighbour_list,
-    neighbour_list_builder,
-)
-from fe_tool.energy.nonbonded import (
-    DEFAULT_SOFT_CORE_ALPHA,
-    LennardJonesParameters,
-    bonded_exclusions,
-    coulomb_energy,
-    lennard_jones_energy,
-    lennard_jones_mixture_tail_chemical_potential,
-    lennard_jones_mixture_tail_energy,
-    lennard_jones_pair_energy,
-    lennard_jones_parameters,
-    lennard_jones_tail_chemical_potential,
-    lennard_jones_tail_energy_per_particle,
-    lennard_jones_tail_integral,
-    lennard_jones_tail_pressure,
-    lennard_jones_tail_virial_integral,
-    lennard_jones_type_parameters,
-    nonbonded_energy,
-    nonbonded_energy_parts,
-    reaction_field_constants,
-    scaled_pair_energy,
-    scaled_pair_parameters,
-    soft_core_lennard_jones_pair_energy,
-)
-from fe_tool.energy.restraints import (
-    distance_restraint_energy,
-    flat_bottom_distance_restraint_energy,
-    flat_bottom_position_restraint_energy,
-    harmonic_position_restraint_energy,
-)
+from fe_tool.energy import box
+from fe_tool.energy import bonded
+from fe_tool.energy import nonbonded
+from fe_tool.energy import neighbours
+from fe_tool.energy import restraints
+from fe_tool.energy import fields
+from fe_tool.energy import model
+from fe_tool.energy.box import *  # noqa: F401,F403  (the names in box.__all__)
+from fe_tool.energy.bonded import *  # noqa: F401,F403  (the names in bonded.__all__)
+from fe_tool.energy.nonbonded import *  # noqa: F401,F403  (the names in nonbonded.__all__)
+from fe_tool.energy.neighbours import *  # noqa: F401,F403  (the names in neighbours.__all__)
+from fe_tool.energy.restraints import *  # noqa: F401,F403  (the names in restraints.__all__)
+from fe_tool.energy.fields import *  # noqa: F401,F403  (the names in fields.__all__)
+from fe_tool.energy.model import *  # noqa: F401,F403  (the names in model.__all__)
 
-__all__ = [
-    # box
-    "as_box", "box_volume", "check_cutoff", "displacement", "minimum_image", "pair_displacements",
-    "safe_norm", "wrap_positions",
-    # bonded
-    "bond_angles", "bond_lengths", "dihedral_angles", "harmonic_angle_energy",
-    "harmonic_bond_energy", "periodic_torsion_energy", "periodic_torsion_potential",
-    "ryckaert_bellemans_energy", "ryckaert_bellemans_potential",
-    # nonbonded
-    "DEFAULT_SOFT_CORE_ALPHA", "LennardJonesParameters", "bonded_exclusions", "coulomb_energy",
-    "lennard_jones_energy", "lennard_jones_mixture_tail_chemical_potential",
-    "lennard_jones_mixture_tail_energy", "lennard_jones_pair_energy", "lennard_jones_parameters",
-    "lennard_jones_tail_chemical_potential", "lennard_jones_tail_energy_per_particle",
-    "lennard_jones_tail_integral", "lennard_jones_tail_pressure",
-    "lennard_jones_tail_virial_integral", "lennard_jones_type_parameters", "nonbonded_energy",
-    "nonbonded_energy_parts", "reaction_field_constants", "scaled_pair_energy",
-    "scaled_pair_parameters", "soft_core_lennard_jones_pair_energy",
-    # neighbours
-    "NeighbourList", "NeighbourListBuilder", "NeighbourListOverflowError", "all_pairs",
-    "check_neighbour_list", "count_pairs_within", "make_neighbour_list",
-    "neighbour_list_builder",
-    # restraints
-    "distance_restraint_energy", "flat_bottom_distance_restraint_energy",
-    "flat_bottom_position_restraint_energy", "harmonic_position_restraint_energy",
-    # fields
-    "MUELLER_BROWN_PARAMETERS", "double_well_energy", "harmonic_well_energy",
-    "mueller_brown_energy",
-    # model
-    "ALL_PAIRS_LIMIT", "DistanceRestraints", "EnergyModel", "ExternalField", "HarmonicAngles",
-    "HarmonicBonds", "Nonbonded", "PeriodicTorsions", "PositionRestraints",
-    "RyckaertBellemansTorsions", "ScaledPairs", "Term", "alchemical_energy_function", "assemble",
-    "energy_function", "nonbonded_term",
-]
+# one list, owned by the submodules: each term module's __all__ says what it exports
+__all__ = [name for module in (box, bonded, nonbonded, neighbours, restraints, fields, model) for name in module.__all__]
