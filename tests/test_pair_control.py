@@ -192,3 +192,53 @@ def test_training_reduces_forward_work_spread_on_lj_decoupling(key):
     # mean forward work (= dissipation + Δf): standard error ≈ 0.75/√128 ≈ 0.07 kT (less when paired);
     # measured drops 0.33–0.40 kT over the same five seeds
     assert after["mean"] < before["mean"] - 0.15
+
+
+# ---------------------------------------------------------------- (5) checks that score both directions, robust spread
+
+
+def test_robust_spread_and_checks_scoring_both_directions(key):
+    """The robust spread (1.4826·MAD) is the std for Gaussian works and ignores a rare far tail (the
+    overlaps of an inserted particle); ``validate="both"`` scores forward and reverse checks, charges both.
+
+    Gaussian: the MAD estimate of σ has a relative standard error of ≈1.17/√n ≈ 1.9% at n = 4000, so
+    0.06 is > 3σ.  Moving harmonic well u_λ = (x − 3λ)²/2 (ΔF = 0): a constant velocity
+    v = 3 transports it exactly, so training must cut the spread in both directions; uncontrolled
+    K = 8, ε = 0.1 gives a robust spread of 2.3–3.3 kT each way, trained 0.10–0.17 kT (three training
+    seeds: ratios 0.04–0.07), so asking for a quarter leaves a wide margin.
+    """
+    from fe_tool.control.training import validation_spread, work_summary
+
+    rng = np.random.default_rng(3)
+    gauss = rng.normal(2.0, 1.5, 4000)
+    assert work_summary(gauss)["robust_spread"] == pytest.approx(1.5, rel=0.06)
+    tail = gauss.copy()
+    tail[:40] = 1e9  # 1% catastrophic overlaps: the std explodes, the robust spread hardly moves
+    s = work_summary(tail)
+    assert s["spread"] > 1e7 and s["robust_spread"] == pytest.approx(1.5, rel=0.08)
+    assert validation_spread([s, work_summary(gauss)], "robust") == pytest.approx(1.5, rel=0.08)
+    assert validation_spread([s, {**s, "nonfinite": 1}], "robust") == np.inf
+
+    path = LinearPath(lambda x: 0.5 * jnp.sum(x**2), lambda x: 0.5 * jnp.sum((x - 3.0) ** 2), kT=1.0)
+    k, n = 8, 512
+    xa, xb = rng.normal(size=(n, 1)), 3.0 + rng.normal(size=(n, 1))
+    lams, eps = np.linspace(0.0, 1.0, k + 1), np.full(k, 0.1)
+    out = prepare_control(key, path, xa, xb, lams, eps, 1.0, 1.0, mode="learned", budget=200_000,
+                          learn_schedule=False, learn_steps="none", validate="both", spread_measure="robust",
+                          network={"width": 16, "depth": 1}, progress=False)
+    before, after = out.work_before, out.work_after
+    for direction in ("forward", "reverse"):
+        assert before[direction]["robust_spread"] > 1.0
+        assert after[direction]["robust_spread"] < 0.25 * before[direction]["robust_spread"], (direction, after)
+    # cost: every check ran both directions (2 validation runs), and before/after runs are charged
+    run_cost = 128 * (k + 1) * path.evaluations_per_point(1)
+    h = out.history
+    assert h and all("validation_reverse_robust_spread" in c for c in h)
+    assert out.evaluations == h[-1]["evaluations"] + 2 * run_cost
+    steps = [h[0]["optimiser_step"]] + [b["optimiser_step"] - a["optimiser_step"] for a, b in zip(h, h[1:])]
+    step_cost = out.settings["optimiser_step_cost"]
+    assert h[0]["evaluations"] == 2 * run_cost + steps[0] * step_cost + 2 * run_cost
+    for a, b, m in zip(h, h[1:], steps[1:]):
+        assert b["evaluations"] - a["evaluations"] == m * step_cost + 2 * run_cost
+    with pytest.raises(ValueError, match="validate"):
+        prepare_control(key, path, xa, xb, lams, eps, 1.0, 1.0, budget=200_000, validate="reverse")

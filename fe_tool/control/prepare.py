@@ -35,9 +35,10 @@ from .networks import Control, ControlScales, build_control
 from .pair_force import pair_force_settings
 from .objectives import OBJECTIVES, Controller, TrainData, TrainSetup
 from .protocol import Protocol, bind_control, midpoints, resample_schedule, resample_step_sizes
-from .training import evaluate, evaluate_recorded, make_optimiser, run_training, work_summary
+from .training import SPREAD_MEASURES, evaluate, evaluate_recorded, make_optimiser, run_training, validation_spread, work_summary
 
 MODES = ("learned", "auto", "reuse")
+VALIDATE = ("forward", "both")
 STEP_LEARNING = ("none", "global", "per_step")
 KEEP_THRESHOLD = 0.8
 """``"auto"`` keeps a control when the predicted variance ratio is below this (a margin
@@ -159,8 +160,9 @@ def _mean_per_step(increments) -> np.ndarray:
     return np.where(count > 0, total / np.maximum(count, 1), np.nan)
 
 
-def _combined_spread(summary: dict) -> float:
-    parts = [summary[d]["spread"] for d in ("forward", "reverse") if d in summary]
+def _combined_spread(summary: dict, measure: str = "std") -> float:
+    key = "spread" if measure == "std" else "robust_spread"
+    parts = [summary[d][key] for d in ("forward", "reverse") if d in summary]
     parts = [p for p in parts if math.isfinite(p)]
     return math.sqrt(sum(p * p for p in parts) / len(parts)) if parts else math.inf
 
@@ -190,7 +192,8 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
                     trajectories_per_step: int = 16, validation_trajectories: int = 128,
                     learning_rate: float | None = None, max_training_fraction: float = 0.5,
                     pilot_fraction: float = 0.1, max_optimiser_steps: int = 3000, check_every: int | None = None,
-                    patience: int = 4, network: dict | None = None, drift_bound_factor: float = 5.0) -> ControlOutcome:
+                    patience: int = 4, network: dict | None = None, drift_bound_factor: float = 5.0,
+                    validate: str = "forward", spread_measure: str = "std") -> ControlOutcome:
     """Train a control (and/or the λ schedule and step sizes) for switching along ``path``.
 
     Args:
@@ -227,6 +230,15 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
             ``width``, ``depth``, ``frequencies``; pair force: see :class:`PairForceControl`).
         drift_bound_factor: the drift is bounded smoothly at this multiple of the RMS
             preconditioned force M∇u along uncontrolled paths.
+        validate: what the training checks score to keep the best parameters and to stop:
+            ``"forward"`` (the forward validation spread; default) or ``"both"`` (√((s_F² + s_R²)/2)
+            over fixed forward and reverse validation sets; each check costs twice as much).
+            The objective can improve one direction only (path KL trains on forward paths),
+            and BAR needs both.
+        spread_measure: ``"std"`` (default) or ``"robust"`` (1.4826 × median absolute deviation:
+            the std for Gaussian works, blind to a rare far tail such as the overlaps of an
+            inserted particle, which make the std of reverse works of a decoupling 10³–10¹⁰ kT);
+            used by the checks and by the keep/drop decision.
 
     Returns:
         :class:`ControlOutcome`; pass ``outcome.drift``, ``outcome.lams``,
@@ -251,6 +263,10 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
         raise ValueError(f"budget must be a non-negative integer number of evaluations, got {budget!r}")
     if mode == "reuse" and warm_start is None:
         raise ValueError("mode='reuse' needs warm_start= (a ControlOutcome or load_control(...) result)")
+    if validate not in VALIDATE:
+        raise ValueError(f"validate must be one of {VALIDATE}, got {validate!r}")
+    if spread_measure not in SPREAD_MEASURES:
+        raise ValueError(f"spread_measure must be one of {SPREAD_MEASURES}, got {spread_measure!r}")
     if not (0.0 < max_training_fraction <= 1.0):
         raise ValueError(f"max_training_fraction must be in (0, 1], got {max_training_fraction}")
     samples_a = jnp.asarray(samples_a)
@@ -279,7 +295,8 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
     settings = {"mode": mode, "objective": objective, "learn_schedule": bool(learn_schedule),
                 "learn_steps": learn_steps, "learn_network": bool(learn_network), "budget": int(budget),
                 "training_switching_steps": k_train, "trajectories_per_step": int(trajectories_per_step),
-                "warm_start": warm_start is not None, "drift_bound_factor": float(drift_bound_factor)}
+                "warm_start": warm_start is not None, "drift_bound_factor": float(drift_bound_factor),
+                "validate": validate, "spread_measure": spread_measure}
 
     # ---------------------------------------------------------------- protocols at the training K
     lams_t = resample_schedule(lams, k_train)
@@ -317,7 +334,12 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
     spent = 2 * run_cost
     before = {"forward": work_summary(w_f0), "reverse": work_summary(w_r0)}
     dissipation_before = _mean_per_step(inc_f0)
-    s0 = before["forward"]["spread"]
+    both = validate == "both"
+    key_check_r = jax.random.fold_in(key_check, 1)
+    spread_key = "spread" if spread_measure == "std" else "robust_spread"
+    scored = ("forward", "reverse") if both else ("forward",)
+    s0 = math.sqrt(sum(before[d][spread_key] ** 2 for d in scored) / len(scored))  # over the finite works
+    check_cost = run_cost * (2 if both else 1)
 
     # ---------------------------------------------------------------- the model to train
     if warm_control is not None:
@@ -350,7 +372,7 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
         else:
             step_cost = 2 * trajectories_per_step * (k_train + 1) * per_point
         if check_every is None:
-            check_every = int(max(5, math.ceil(10 * run_cost / step_cost)))
+            check_every = int(max(5, math.ceil(10 * check_cost / step_cost)))
         lr = float(learning_rate if learning_rate is not None else
                    DEFAULT_LEARNING_RATES[objective] * (WARM_START_LEARNING_RATE_FACTOR if warm_start is not None else 1.0))
         after_cost = 2 * run_cost
@@ -362,15 +384,19 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
             initial_spread = s0  # the zero-initialised control is uncontrolled switching
         else:  # a warm start is only replaced by parameters that validate better
             w_init, _ = evaluate(model, key_check, valid_a, path, precision_a, precision_b, "forward")
-            spent += run_cost
-            init = work_summary(w_init)
-            initial_spread = init["spread"] if init["nonfinite"] == 0 else math.inf
+            parts = [work_summary(w_init)]
+            if both:
+                w_init_r, _ = evaluate(model, key_check_r, valid_b, path, precision_a, precision_b, "reverse")
+                parts.append(work_summary(w_init_r))
+            spent += check_cost
+            initial_spread = validation_spread(parts, spread_measure)
         report = run_training(
             key_train, path, model, spec, data, setup, validation_starts=valid_a, validation_key=key_check,
-            step_cost=step_cost, check_cost=run_cost, allowance=allowance - after_cost, baseline_spread=s0,
+            step_cost=step_cost, check_cost=check_cost, allowance=allowance - after_cost, baseline_spread=s0,
             total_budget=int(budget), spent_before=spent, check_every=check_every, patience=patience,
             pilot_allowance=int(pilot_fraction * budget) if mode == "auto" else None, keep_threshold=KEEP_THRESHOLD,
-            max_steps=max_optimiser_steps, initial_spread=initial_spread, progress=progress)
+            max_steps=max_optimiser_steps, initial_spread=initial_spread, progress=progress,
+            reverse_starts=valid_b if both else None, reverse_key=key_check_r, spread_measure=spread_measure)
         spent += report.evaluations
         _, frozen = eqx.partition(model, spec)
         model = eqx.combine(report.trainable, frozen)
@@ -385,14 +411,15 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
     lams_after = np.asarray(model.protocol.lams(), dtype=np.float64)
 
     # ---------------------------------------------------------------- decision
-    s_before, s_after = _combined_spread(before), _combined_spread(after)
+    s_before, s_after = _combined_spread(before, spread_measure), _combined_spread(after, spread_measure)
     left = budget - spent
     ratio = (s_after / s_before) ** 2 * budget / left if (left > 0 and s_before > 0) else math.inf
     nonfinite_before = before["forward"]["nonfinite"] + before["reverse"]["nonfinite"]
     nonfinite_after = after["forward"]["nonfinite"] + after["reverse"]["nonfinite"]
     more_blowups = nonfinite_after > nonfinite_before + max(1, 0.01 * 2 * n_valid)
     what = "control" if control is not None else "learned protocol"
-    numbers = (f"the validation work spread (forward and reverse, K={k_train}) went from {s_before:.3g} to "
+    measure = "work spread" if spread_measure == "std" else "robust work spread (1.4826·MAD)"
+    numbers = (f"the validation {measure} (forward and reverse, K={k_train}) went from {s_before:.3g} to "
                f"{s_after:.3g} kT for {spent:,} evaluations ({spent / budget:.1%} of the {budget:,} budget)")
     if report is not None:
         numbers += f" in {report.optimiser_steps} optimiser steps ({report.stop_reason})"

@@ -86,15 +86,36 @@ def evaluate_recorded(model: Controller, key, starts, path, precision_a, precisi
 
 
 def work_summary(works: np.ndarray) -> dict:
-    """Mean, spread (std) and count of non-finite works (kT)."""
+    """Mean, spread (std), robust spread (1.4826 × median absolute deviation) and count of non-finite works (kT).
+
+    The robust spread equals the std for Gaussian works and ignores a rare far tail (an
+    insertion whose particle lands on a neighbour: works of 10³–10⁹ kT in a fluid).
+    """
     works = np.asarray(works, dtype=np.float64)
     finite = works[np.isfinite(works)]
     return {
         "mean": float(np.mean(finite)) if finite.size else float("nan"),
         "spread": float(np.std(finite, ddof=1)) if finite.size > 1 else float("nan"),
+        "robust_spread": float(1.4826 * np.median(np.abs(finite - np.median(finite)))) if finite.size > 1 else float("nan"),
         "nonfinite": int(works.size - finite.size),
         "trajectories": int(works.size),
     }
+
+
+SPREAD_MEASURES = ("std", "robust")
+
+
+def validation_spread(summaries: list, measure: str = "std") -> float:
+    """√(mean of squared spreads) over the directions' :func:`work_summary` dicts; ``inf`` if any work is non-finite."""
+    if measure not in SPREAD_MEASURES:
+        raise ValueError(f"spread measure must be one of {SPREAD_MEASURES}, got {measure!r}")
+    key = "spread" if measure == "std" else "robust_spread"
+    if any(s["nonfinite"] for s in summaries):
+        return math.inf
+    values = [s[key] for s in summaries]
+    if not all(math.isfinite(v) for v in values):
+        return math.inf
+    return math.sqrt(sum(v * v for v in values) / len(values))
 
 
 @dataclasses.dataclass
@@ -123,7 +144,8 @@ def run_training(key, path, model: Controller, spec, data: TrainData, setup: Tra
                  validation_starts, validation_key, step_cost: int, check_cost: int, allowance: int,
                  baseline_spread: float, total_budget: int, spent_before: int, check_every: int, patience: int,
                  pilot_allowance: int | None = None, keep_threshold: float = 1.0, max_steps: int = 10_000,
-                 initial_spread: float = math.inf, progress: bool | None = None) -> TrainingReport:
+                 initial_spread: float = math.inf, progress: bool | None = None, reverse_starts=None,
+                 reverse_key=None, spread_measure: str = "std") -> TrainingReport:
     """Optimise ``model``'s trainable part (``spec``) until a stopping rule fires.
 
     Args:
@@ -142,8 +164,15 @@ def run_training(key, path, model: Controller, spec, data: TrainData, setup: Tra
         initial_spread: validation spread of the starting parameters (they are returned
             when no check does better).
         progress: show a tqdm bar (``None``: only in a terminal, never with FE_TOOL_PROGRESS=0).
+        reverse_starts, reverse_key: optional fixed reverse validation set (B samples, noise key);
+            then a check scores √((s_F² + s_R²)/2) (``check_cost`` must cover both runs) and
+            ``baseline_spread`` / ``initial_spread`` must be measured the same way.
+        spread_measure: ``"std"`` or ``"robust"`` (1.4826 × MAD, see :func:`work_summary`).
     """
     from tqdm.auto import tqdm
+
+    if spread_measure not in SPREAD_MEASURES:
+        raise ValueError(f"spread_measure must be one of {SPREAD_MEASURES}, got {spread_measure!r}")
 
     # without a finite uncontrolled spread the "ratio" is spread² · B/(B − spent) in kT²: same stopping rule
     reference = baseline_spread if (math.isfinite(baseline_spread) and baseline_spread > 0) else 1.0
@@ -186,7 +215,12 @@ def run_training(key, path, model: Controller, spec, data: TrainData, setup: Tra
             spent += check_cost
             bar.update(check_cost)
             summary = work_summary(works)
-            spread = summary["spread"] if summary["nonfinite"] == 0 else math.inf
+            summaries = [summary]
+            if reverse_starts is not None:
+                works_r, _ = evaluate(current, reverse_key, reverse_starts, path, data.precision_a, data.precision_b,
+                                      "reverse")
+                summaries.append(work_summary(works_r))
+            spread = validation_spread(summaries, spread_measure)
             left = total_budget - spent
             ratio = (spread / reference) ** 2 * total_budget / left if left > 0 else math.inf
             history.append({
@@ -194,10 +228,12 @@ def run_training(key, path, model: Controller, spec, data: TrainData, setup: Tra
                 "loss": float(np.mean(losses)) if losses else float("nan"),
                 "validation_work_mean": summary["mean"], "validation_work_spread": summary["spread"],
                 "validation_nonfinite": summary["nonfinite"], "predicted_variance_ratio": ratio,
+                **({"validation_score": spread, "validation_reverse_work_spread": summaries[1]["spread"],
+                    "validation_reverse_robust_spread": summaries[1]["robust_spread"]} if len(summaries) > 1 else {}),
                 "skipped_steps": skipped,
             })
             losses = []
-            bar.set_postfix(spread=f"{summary['spread']:.3g}", ratio=f"{ratio:.3g}")
+            bar.set_postfix(spread=f"{spread:.3g}", ratio=f"{ratio:.3g}")
             if spread < best[0]:
                 best = (spread, trainable)
             if ratio < best_ratio * 0.99:
