@@ -18,6 +18,7 @@ import numpy as np
 from . import diagnostics as diag
 from .estimators import bar, crooks_gaussian, jarzynski, solve_bar, work_overlap
 from .estimators.grouped import with_grouped_error
+from .estimators.spread import robust_spread
 from .inputs import validate_inputs
 from .path import LinearPath, Path, make_schedule
 from .progress import progress_bar, progress_enabled
@@ -241,6 +242,10 @@ def _prepare_control(opts, key, path, samples_a, samples_b, lams, step_sizes, pr
     if getattr(path, "nonbonded", None) is not None and "network" not in settings and "warm_start" not in settings:
         # particle systems with a nonbonded model: the permutation- and rotation-equivariant pair-force control
         settings["network"] = {"kind": "pair_force"}
+        # insertion (B→A) works carry rare overlap outliers of 1e3–1e30 kT: score both directions
+        # with the robust spread (1.4826·MAD), or the checks and the keep/drop decision follow noise
+        settings.setdefault("validate", "both")
+        settings.setdefault("spread_measure", "robust")
     reuse = opts.control
     if isinstance(reuse, str) and reuse not in CONTROL_MODES:
         reuse = load_control(reuse, expected_fingerprint=path.fingerprint_probe(np.asarray(probe)), path=path)
@@ -366,8 +371,11 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
             cost["pilot"] += 2 * switching_evaluations(path, n, PILOT_STEPS)
             bad_f, bad_r = mark_diverged(wf0), mark_diverged(wr0)
             ok_f, ok_r = wf0[~bad_f], wr0[~bad_r]
-            hysteresis = float(ok_f.mean() + ok_r.mean()) if ok_f.size > 2 and ok_r.size > 2 else float("inf")
-            spread = float(max(ok_f.std(), ok_r.std())) if ok_f.size > 2 and ok_r.size > 2 else float("inf")
+            # medians, not means: insertion-type switching has rare overlap works of 1e3–1e30 kT that sit far
+            # outside the overlap region BAR uses but would decide a mean (for Gaussian works they agree)
+            enough = ok_f.size > 2 and ok_r.size > 2
+            hysteresis = float(np.median(ok_f) + np.median(ok_r)) if enough else float("inf")
+            spread = float(max(robust_spread(ok_f), robust_spread(ok_r))) if enough else float("inf")
             points.append(PilotPoint(PILOT_STEPS, scale, hysteresis, spread, int(bad_f.sum() + bad_r.sum())))
     spent += cost["pilot"]
     remaining = (budget - spent) if budget is not None else 10**15

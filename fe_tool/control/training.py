@@ -34,6 +34,7 @@ import jax.numpy as jnp
 import numpy as np
 import optax
 
+from ..estimators.spread import robust_spread
 from ..progress import progress_enabled
 from ..switching import switch
 from .objectives import Controller, TrainData, TrainSetup, record_paths
@@ -96,7 +97,7 @@ def work_summary(works: np.ndarray) -> dict:
     return {
         "mean": float(np.mean(finite)) if finite.size else float("nan"),
         "spread": float(np.std(finite, ddof=1)) if finite.size > 1 else float("nan"),
-        "robust_spread": float(1.4826 * np.median(np.abs(finite - np.median(finite)))) if finite.size > 1 else float("nan"),
+        "robust_spread": robust_spread(finite),
         "nonfinite": int(works.size - finite.size),
         "trajectories": int(works.size),
     }
