@@ -30,6 +30,7 @@ from fe_tool.energy import (
 )
 from fe_tool.energy.bonded import dihedral_angles
 from fe_tool.systemfile import SystemFileError, load_system, parse_system
+from nested_edit import edited
 
 SYSTEMS = pathlib.Path(__file__).resolve().parent.parent / "systems"
 GAS_CONSTANT_KJ = 0.00831446261815324  # CODATA 2018 R in kJ/(mol K) (REFERENCE_DATA §1)
@@ -163,15 +164,7 @@ PROBE = {
 
 
 def _edit(keys, value):
-    data = copy.deepcopy(PROBE)
-    node = data
-    for k in keys[:-1]:
-        node = node[k]
-    if value is KeyError:
-        del node[keys[-1]]
-    else:
-        node[keys[-1]] = value
-    return data
+    return edited(PROBE, keys, value)
 
 
 def test_probe_file_builds_the_staged_path_with_explicit_units():

@@ -6,6 +6,7 @@ import pytest
 
 from fe_tool.cli import main
 from fe_tool.systemfile import SystemFileError, list_systems, load_system, parse_system
+from nested_edit import edited
 
 MINIMAL = {
     "units": "reduced", "kT": 1.0,
@@ -15,15 +16,7 @@ MINIMAL = {
 
 
 def _with(path_keys, value):
-    data = json.loads(json.dumps(MINIMAL))
-    node = data
-    for k in path_keys[:-1]:
-        node = node[k]
-    if value is KeyError:
-        del node[path_keys[-1]]
-    else:
-        node[path_keys[-1]] = value
-    return data
+    return edited(MINIMAL, path_keys, value)
 
 
 @pytest.mark.parametrize("keys, value, message", [
