@@ -8,10 +8,11 @@ Kolafa & Nezbeda 1994 (Fluid Phase Equilib. 100, 1) and Johnson, Zollweg & Gubbi
 
 Usage::
 
-    python benchmarks/bench_lj_decoupling.py [--budget 800000] [--seed 0] [--chains 16] [--json out.json]
+    python benchmarks/bench_lj_decoupling.py [--budget 2000000] [--seed 0] [--chains 16] [--json out.json]
 
-Cost: O(N²) all-pairs energies, 2–6 ms per evaluation on two shared CPU cores (5–10× the
-108-particle test), so 30–80 minutes at the file's budget of 8e5 evaluations.
+Cost: neighbour-list energies, 0.42 ms per energy+gradient evaluation on an idle core (more when the
+machine is shared), so about 15 minutes idle (37 measured on two loaded cores) at the file's budget of 2e6.
+Measured (seed 0, 2e6): βμ_ex = −0.493 ± 0.085 vs Kolafa–Nezbeda −0.48710 (difference −0.006).
 """
 from __future__ import annotations
 
