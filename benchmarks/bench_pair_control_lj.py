@@ -65,12 +65,13 @@ import numpy as np  # noqa: E402
 
 from fe_tool.control import PairForceControl, bind_control, prepare_control  # noqa: E402
 from fe_tool.estimators import bar  # noqa: E402
-from fe_tool.planning import PILOT_SCALES, PilotPoint, plan_protocol, schedule_from_profile  # noqa: E402
+from fe_tool.planning import PILOT_SCALES, plan_protocol, schedule_from_profile  # noqa: E402
 from fe_tool.sampling import end_target, sample_state  # noqa: E402
 from fe_tool.switching import run_in_batches, switching_evaluations  # noqa: E402
 from fe_tool.systemfile import load_system  # noqa: E402
-from fe_tool.workflow import (PILOT_STEPS, PILOT_TRAJECTORIES, SAMPLING_SHARE, _schedule_pilot,  # noqa: E402
-                             _switching_step_sizes, mark_diverged)
+from fe_tool.estimators.spread import robust_spread  # noqa: E402
+from fe_tool.workflow import (PILOT_STEPS, SAMPLING_SHARE, _schedule_pilot, _switching_step_sizes,  # noqa: E402
+                             step_scale_pilot)
 
 ROOT = pathlib.Path(__file__).resolve().parent.parent
 
@@ -109,26 +110,9 @@ def workflow_pilot(path, key, sa, sb, precision_a, precision_b):
     k_shape, k_pilot = jax.random.split(key)
     profile_lams, profile = _schedule_pilot(path, k_shape, sa, sb, precision_a, precision_b, cost, PILOT_SCALES)
     schedule_for = lambda k: schedule_from_profile(profile_lams, profile, k)  # noqa: E731
-    lams0 = schedule_for(PILOT_STEPS)
-    n = min(PILOT_TRAJECTORIES, len(sa.samples), len(sb.samples))
-    points = []
-    for scale in PILOT_SCALES:
-        eps0 = _switching_step_sizes(lams0, sa, sb, scale)
-        kf, kr, k_pilot = jax.random.split(k_pilot, 3)
-        wf0, _, _ = run_in_batches(path, None, kf, sa.samples[:n], lams0, eps0, precision_a, precision_b, "forward", n)
-        wr0, _, _ = run_in_batches(path, None, kr, sb.samples[:n], lams0, eps0, precision_a, precision_b, "reverse", n)
-        cost["pilot"] += 2 * switching_evaluations(path, n, PILOT_STEPS)
-        bad_f, bad_r = mark_diverged(wf0), mark_diverged(wr0)
-        ok_f, ok_r = wf0[~bad_f], wr0[~bad_r]
-        hysteresis = float(ok_f.mean() + ok_r.mean()) if ok_f.size > 2 and ok_r.size > 2 else float("inf")
-        spread = float(max(ok_f.std(), ok_r.std())) if ok_f.size > 2 and ok_r.size > 2 else float("inf")
-        points.append(PilotPoint(PILOT_STEPS, scale, hysteresis, spread, int(bad_f.sum() + bad_r.sum())))
+    points = step_scale_pilot(path, k_pilot, sa, sb, precision_a, precision_b, schedule_for(PILOT_STEPS),
+                              PILOT_SCALES, cost)
     return schedule_for, points, cost["pilot"]
-
-
-def robust_spread(w):
-    w = np.asarray(w)[np.isfinite(w)]
-    return float(1.4826 * np.median(np.abs(w - np.median(w)))) if w.size else float("nan")
 
 
 def summary(w):

@@ -236,6 +236,31 @@ def _schedule_pilot(path, key, samples_a, samples_b, precision_a, precision_b, c
     return lams0, length_profile(lams0, variance)
 
 
+def step_scale_pilot(path, key, samples_a, samples_b, precision_a, precision_b, lams, scales, cost) -> list[PilotPoint]:
+    """Uncontrolled pilot switching on ``lams`` at each step scale; the points the protocol planner fits.
+
+    Adds the pilot's evaluations to ``cost["pilot"]``.
+    """
+    n = min(PILOT_TRAJECTORIES, len(samples_a.samples), len(samples_b.samples))
+    steps = len(lams) - 1
+    points = []
+    for scale in scales:
+        eps = _switching_step_sizes(lams, samples_a, samples_b, scale)
+        kf, kr, key = jax.random.split(key, 3)
+        wf, _, _ = run_in_batches(path, None, kf, samples_a.samples[:n], lams, eps, precision_a, precision_b, "forward", n)
+        wr, _, _ = run_in_batches(path, None, kr, samples_b.samples[:n], lams, eps, precision_a, precision_b, "reverse", n)
+        cost["pilot"] += 2 * switching_evaluations(path, n, steps)
+        bad_f, bad_r = mark_diverged(wf), mark_diverged(wr)
+        ok_f, ok_r = wf[~bad_f], wr[~bad_r]
+        # medians, not means: insertion-type switching has rare overlap works of 1e3–1e30 kT that sit far
+        # outside the overlap region BAR uses but would decide a mean (for Gaussian works they agree)
+        enough = ok_f.size > 2 and ok_r.size > 2
+        hysteresis = float(np.median(ok_f) + np.median(ok_r)) if enough else float("inf")
+        spread = float(max(robust_spread(ok_f), robust_spread(ok_r))) if enough else float("inf")
+        points.append(PilotPoint(steps, scale, hysteresis, spread, int(bad_f.sum() + bad_r.sum())))
+    return points
+
+
 def _prepare_control(opts, key, path, samples_a, samples_b, lams, step_sizes, precision_a, precision_b, remaining,
                      probe):
     """Train, decide on or reuse a control; returns (drift, lams, step_sizes, report, outcome)."""
@@ -364,22 +389,8 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
                                                 scales)
         schedule_for = (lambda k: schedule_from_profile(profile_lams, profile, k))
     if need_pilot:
-        lams0 = schedule_for(PILOT_STEPS)
-        n = min(PILOT_TRAJECTORIES, len(samples_a.samples), len(samples_b.samples))
-        for scale in scales:
-            eps0 = _switching_step_sizes(lams0, samples_a, samples_b, scale)
-            kf, kr, k_pilot = jax.random.split(k_pilot, 3)
-            wf0, _, _ = run_in_batches(path, None, kf, samples_a.samples[:n], lams0, eps0, precision_a, precision_b, "forward", n)
-            wr0, _, _ = run_in_batches(path, None, kr, samples_b.samples[:n], lams0, eps0, precision_a, precision_b, "reverse", n)
-            cost["pilot"] += 2 * switching_evaluations(path, n, PILOT_STEPS)
-            bad_f, bad_r = mark_diverged(wf0), mark_diverged(wr0)
-            ok_f, ok_r = wf0[~bad_f], wr0[~bad_r]
-            # medians, not means: insertion-type switching has rare overlap works of 1e3–1e30 kT that sit far
-            # outside the overlap region BAR uses but would decide a mean (for Gaussian works they agree)
-            enough = ok_f.size > 2 and ok_r.size > 2
-            hysteresis = float(np.median(ok_f) + np.median(ok_r)) if enough else float("inf")
-            spread = float(max(robust_spread(ok_f), robust_spread(ok_r))) if enough else float("inf")
-            points.append(PilotPoint(PILOT_STEPS, scale, hysteresis, spread, int(bad_f.sum() + bad_r.sum())))
+        points.extend(step_scale_pilot(path, k_pilot, samples_a, samples_b, precision_a, precision_b,
+                                       schedule_for(PILOT_STEPS), scales, cost))
     spent += cost["pilot"]
     remaining = (budget - spent) if budget is not None else 10**15
     available = min(len(samples_a.samples), len(samples_b.samples))
