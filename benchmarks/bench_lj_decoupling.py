@@ -2,7 +2,7 @@
 
 Runs ``systems/lj_fluid_decoupling_256.toml`` (256 particles, T* = 2.0, ρ* = 0.3, r_c = 2.5σ with the
 analytic tail inside the model) and compares βμ_ex = −ΔF/kT with two equations of state for the
-full LJ potential, implemented in ``tests/test_lj_fluid.py`` from REFERENCE_DATA §7:
+full LJ potential, implemented in ``tests/test_lj_fluid.py`` from docs/references.md §9:
 Kolafa & Nezbeda 1994 (Fluid Phase Equilib. 100, 1) and Johnson, Zollweg & Gubbins 1993
 (Mol. Phys. 78, 591). Prints the numbers; it asserts nothing.
 

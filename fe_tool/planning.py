@@ -15,7 +15,7 @@ known without knowing ΔF); A and B are fitted by non-negative least squares and
 minimises the predicted BAR variance at the remaining budget.  For Gaussian works of
 spread σ (σ² ≈ h), Var(BAR) ≈ σ²/(2T)·g(σ) with g growing from 1 (σ → 0) to ≈1.8 at σ = 3,
 which exp(σ²/15) follows within 10 % (quadrature of the BAR variance in Shirts et al. 2003,
-PRL 91, 140601, tabulated in the project's reference data).
+PRL 91, 140601, tabulated in docs/references.md §7a).
 """
 from __future__ import annotations
 

@@ -11,7 +11,7 @@ Exact answer.  For harmonic wells u = (k/2)|x − c|² in d dimensions (kT = 1)
     Δf = f_B − f_A = (1/2) Σ_i ln(k_B,i / k_A,i),
 
 whatever the centres (Tuckerman 2010, "Statistical Mechanics: Theory and Molecular
-Simulation", OUP; REFERENCE_DATA §2).
+Simulation", OUP; docs/references.md §3a).
 
 Why the band is [0.90, 0.98].  With R = 300 independent repeats of a well-calibrated 95 %
 interval the number of hits is binomial, so the measured coverage has standard deviation

@@ -1,6 +1,6 @@
 """Energy terms against hand calculations, finite differences and published reference values.
 
-References (see /work/shared/REFERENCE_DATA.md):
+References (sources and verification status in docs/references.md):
 * constants: CODATA 2018 / SI 2019 (Tiesinga et al., Rev. Mod. Phys. 93, 025010 (2021));
 * LJ tail corrections: Allen & Tildesley, Computer Simulation of Liquids (1987);
   Frenkel & Smit, Understanding Molecular Simulation (2002) [mem for equation numbers];
@@ -58,7 +58,7 @@ def jittered_lattice(n_side, density, key_seed=0, jitter=0.08):
 
 
 def test_thermal_energy_and_constants_codata_2018():
-    # REFERENCE_DATA §1: kT(298.15 K) = 2.478957029602389 kJ/mol = 0.5924849497137640 kcal/mol.
+    # CODATA 2018; docs/references.md §2: kT(298.15 K) = 2.478957029602389 kJ/mol = 0.5924849497137640 kcal/mol.
     assert units.thermal_energy(298.15) == pytest.approx(2.478957029602389, abs=1e-12)
     assert units.thermal_energy(298.15, "kcal/mol") == pytest.approx(0.5924849497137640, abs=1e-13)
     assert units.thermal_energy(300.0) == pytest.approx(2.494338785445972, abs=1e-12)
@@ -144,7 +144,7 @@ def test_periodic_torsion_by_hand_and_gradient():
 
 
 def test_ryckaert_bellemans_butane_landmarks_and_gradient():
-    # Ryckaert & Bellemans 1978; REFERENCE_DATA §8. Gauche by hand: cos ψ = −cos 60° = −0.5,
+    # Ryckaert & Bellemans 1978; docs/references.md §10. Gauche by hand: cos ψ = −cos 60° = −0.5,
     # 9.28 − 12.16/2 − 13.12/4 + 3.06/8 + 26.24/16 + 31.5/32 = 2.926875 kJ/mol.
     quad = jnp.array([[0, 1, 2, 3]])
     coefficients = jnp.asarray(BUTANE_RB_KJ)[None]
@@ -348,7 +348,7 @@ def test_neighbour_list_updates_inside_scan(lj_fluid):
     ],
 )
 def test_lj_tail_correction_reference_values(cutoff, density, u_tail, p_tail, mu_tail):
-    # REFERENCE_DATA §7e, u_tail/N = (8/3)πρ[(1/3)r_c⁻⁹ − r_c⁻³]: Allen & Tildesley 1987;
+    # docs/references.md §9e, u_tail/N = (8/3)πρ[(1/3)r_c⁻⁹ − r_c⁻³]: Allen & Tildesley 1987;
     # Frenkel & Smit 2002 [mem for the equation numbers].
     assert E.lennard_jones_tail_energy_per_particle(density, cutoff) == pytest.approx(u_tail, abs=1e-8)
     assert E.lennard_jones_tail_pressure(density, cutoff) == pytest.approx(p_tail, abs=1e-8)
@@ -421,7 +421,7 @@ def test_harmonic_and_double_well_fields():
 
 
 def test_mueller_brown_minimum():
-    # Müller & Brown 1979; minimum MA from REFERENCE_DATA §6 (Newton's method, 10 digits).
+    # Müller & Brown 1979; minimum MA from docs/references.md §8 (Newton's method, 10 digits).
     minimum = jnp.array([-0.5582236346, 1.4417258418])
     assert float(E.mueller_brown_energy(minimum)) == pytest.approx(-146.69951721, abs=1e-8)
     assert float(jnp.max(jnp.abs(jax.grad(E.mueller_brown_energy)(minimum)))) < 1e-6

@@ -1,12 +1,12 @@
-"""Checks of fe_tool.estimators against analytic answers and REFERENCE_DATA §§2, 4, 5.
+"""Checks of fe_tool.estimators against analytic answers and docs/references.md §§3, 5, 6, 7.
 
-Every reference is named beside the check.  Tags follow REFERENCE_DATA: [src] confirmed in a
+Every reference is named beside the check.  Tags (defined in docs/references.md §1): [src] confirmed in a
 public source, [num] checked numerically, [mem] from memory.  Tolerances come from reported
 errors (|error| < 4σ, σ the combined standard error) or from the number of printed digits.
 Coverage checks run ≥ 200 seeded repeats and require the ±1.96·stderr interval to contain
 the truth in between 90 % and 98 % of them.
 
-Gaussian work (Crooks 1999, Phys. Rev. E 60, 2721; REFERENCE_DATA §5): reduced forward works
+Gaussian work (Crooks 1999, Phys. Rev. E 60, 2721; docs/references.md §5b): reduced forward works
 w_F ~ N(Δf + s²/2, s²) and reverse works w_R ~ N(−Δf + s²/2, s²), so Δf = ⟨w⟩ − s²/2.
 """
 from __future__ import annotations
@@ -65,7 +65,7 @@ def harmonic_samples(generator, stiffness, centres, per_state):
 # --------------------------------------------------------------------------------------------
 
 def test_jarzynski_gaussian_work_both_directions():
-    # Gaussian work: Δf = ⟨w⟩ − s²/2 (Crooks 1999, Phys. Rev. E 60, 2721; REFERENCE_DATA §4/§5).
+    # Gaussian work: Δf = ⟨w⟩ − s²/2 (Crooks 1999, Phys. Rev. E 60, 2721; docs/references.md §5b).
     generator = np.random.default_rng(11)
     forward, reverse = gaussian_works(generator, 2.0, 1.0, 20_000)
     for works, direction in ((forward, "forward"), (reverse, "reverse")):
@@ -107,7 +107,7 @@ def test_jarzynski_nonfinite_policy():
 
 
 def test_asymptotic_bias_and_variance_formula_against_table():
-    # REFERENCE_DATA §4 [src for the papers, formula checked there]: Zuckerman & Woolf 2002,
+    # docs/references.md §6 [src for the papers, formula derived there]: Zuckerman & Woolf 2002,
     # Phys. Rev. Lett. 89, 180602; Gore, Ritort & Bustamante 2003, PNAS 100, 12564.
     # B = (e^{s²} − 1)/2N, Var = (e^{s²} − 1)/N; table values printed to 3–4 digits.
     table = [  # (s, N, asymptotic bias, asymptotic variance) as printed
@@ -125,7 +125,7 @@ def test_asymptotic_bias_and_variance_formula_against_table():
 
 
 def test_finite_sample_bias_against_monte_carlo_table():
-    # REFERENCE_DATA §4 Monte Carlo column [num]: s = 1, N = 10: bias 0.0730(9);
+    # docs/references.md §6 Monte Carlo column [num]: s = 1, N = 10: bias 0.0730(9);
     # s = 0.5, N = 10: 0.01340(37); exact anchor N = 1: bias = s²/2.
     generator = np.random.default_rng(5)
     for spread, count, reference, reference_error in ((1.0, 10, 0.0730, 0.0009), (0.5, 10, 0.01340, 0.00037)):
@@ -139,7 +139,7 @@ def test_finite_sample_bias_against_monte_carlo_table():
 
 def test_reported_gaussian_model_bias_tracks_the_true_bias():
     # The bias the estimator reports (Gaussian-work model, finite N simulated) should on average
-    # match the Monte Carlo bias 0.0730(9) of REFERENCE_DATA §4 for s = 1, N = 10.
+    # match the Monte Carlo bias 0.0730(9) of docs/references.md §6 for s = 1, N = 10.
     generator = np.random.default_rng(8)
     works = generator.normal(0.5, 1.0, (300, 10))
     reported = np.array([jarzynski(w, n_bootstrap=200, rng=generator).details["bias_gaussian_model"]
@@ -164,7 +164,7 @@ def test_jarzynski_coverage_non_gaussian_work():
 @pytest.mark.parametrize("spread, count", [(1.5, 50), (1.0, 200)])
 def test_jarzynski_coverage(spread, count):
     # Gaussian work, Δf = 0.  (1.5, 50) is far below N ≈ 10·e^{2s²} ≈ 900 where the asymptotic
-    # theory holds (REFERENCE_DATA §4); there the plain delta-method interval is too narrow
+    # theory holds (docs/references.md §6); there the plain delta-method interval is too narrow
     # (Zuckerman & Woolf 2002) and the bias-aware one must repair it.
     generator = np.random.default_rng(21)
     works = generator.normal(0.5 * spread**2, spread, (400, count))
@@ -184,12 +184,12 @@ def test_jarzynski_coverage(spread, count):
 
 def test_crooks_worked_example():
     # Goette & Grubmüller 2009, J. Comput. Chem. 30, 447 [mem for the reference]; the worked
-    # example W* = 1.85134071 with both densities 0.0721972233 is [num] in REFERENCE_DATA §5.
+    # example W* = 1.85134071 with both densities 0.0721972233 is [num] in docs/references.md §5c.
     crossing = gaussian_crossing(5.0, 2.5, 1.0, 2.0)
     assert crossing == pytest.approx(1.85134071, abs=5e-9)
     assert norm.pdf(crossing, 5.0, 2.5) == pytest.approx(0.0721972233, abs=5e-11)
     assert norm.pdf(-crossing, 1.0, 2.0) == pytest.approx(0.0721972233, abs=5e-11)
-    # Equal variances: the equation is linear, W* = (μ_F − μ_R)/2 (REFERENCE_DATA §5).
+    # Equal variances: the equation is linear, W* = (μ_F − μ_R)/2 (docs/references.md §5c).
     assert gaussian_crossing(3.0, 2.0, 1.0, 2.0) == 1.0
     assert gaussian_crossing(3.0, 2.0, 1.0, 2.0 * (1 + 1e-15)) == pytest.approx(1.0, abs=1e-12)
     vector = gaussian_crossing(np.array([5.0, 3.0]), np.array([2.5, 2.0]), 1.0, 2.0)
@@ -197,7 +197,7 @@ def test_crooks_worked_example():
 
 
 def test_crooks_gaussian_work():
-    # Gaussian work Δf = 2, s = 2 (REFERENCE_DATA §5 [num] used 10⁵ + 10⁵ works).
+    # Gaussian work Δf = 2, s = 2 (docs/references.md §5b [num] used 10⁵ + 10⁵ works).
     generator = np.random.default_rng(12)
     forward, reverse = gaussian_works(generator, 2.0, 2.0, 50_000)
     result = crooks_gaussian(forward, reverse, n_bootstrap=100, rng=generator)
@@ -225,7 +225,7 @@ def test_crooks_coverage():
 
 def test_bar_gaussian_work_and_bootstrap():
     # Bennett 1976, J. Comput. Phys. 22, 245; ML form of Shirts et al. 2003, Phys. Rev. Lett.
-    # 91, 140601 [src for the papers; equation form [mem], verified in REFERENCE_DATA §5].
+    # 91, 140601 [src for the papers; equation form [mem], verified in docs/references.md §7a].
     generator = np.random.default_rng(13)
     forward, reverse = gaussian_works(generator, 2.0, 2.0, 1000)
     result = bar(forward, reverse)
@@ -242,7 +242,7 @@ def test_bar_gaussian_work_and_bootstrap():
 
 @pytest.mark.parametrize("n_forward, n_reverse, reference", [(200, 200, 0.012242), (400, 100, 0.012014)])
 def test_bar_variance_against_quadrature(n_forward, n_reverse, reference):
-    # REFERENCE_DATA §5 [num]: quadrature of the Shirts et al. 2003 variance for Gaussian work,
+    # docs/references.md §7a [num]: quadrature of the Shirts et al. 2003 variance for Gaussian work,
     # Δf = 2, s = 2.  Works placed at the normal quantiles (i − ½)/n turn the sample averages in
     # the formula into a midpoint-rule quadrature; the variance scales as 1/N.
     scale = 500
@@ -283,7 +283,7 @@ def test_bar_coverage():
     value = coverage(estimates, errors, 2.0)
     print(f"bar coverage {value:.3f}; replicate var {estimates.var(ddof=1):.5f}, mean asymptotic {np.mean(errors**2):.5f}")
     assert 0.90 <= value <= 0.98
-    # Replicate variance vs the quadrature value 0.012242 (REFERENCE_DATA §5 [num]); the sample
+    # Replicate variance vs the quadrature value 0.012242 (docs/references.md §7a [num]); the sample
     # variance of 400 replicates has relative error √(2/399).
     assert abs(estimates.var(ddof=1) / 0.012242 - 1.0) < 4.0 * math.sqrt(2.0 / 399)
 
@@ -294,12 +294,12 @@ def test_bar_coverage():
 
 STIFFNESS = (1.0, 2.0, 4.0)
 CENTRES = (0.0, 0.5, 1.0)
-EXACT = np.array([0.0, 0.5 * LN2, LN2])   # f_k − f_0 = ½ ln(k_k/k_0), REFERENCE_DATA §2 [num]
+EXACT = np.array([0.0, 0.5 * LN2, LN2])   # f_k − f_0 = ½ ln(k_k/k_0), Tuckerman 2010, OUP; docs/references.md §3a
 
 
 def test_mbar_harmonic_states():
     # Shirts & Chodera 2008, J. Chem. Phys. 129, 124105 [src for the paper]; three harmonic
-    # states of REFERENCE_DATA §5 with exact Δf = (½ ln 2, ln 2).
+    # states of docs/references.md §7b with exact Δf = (½ ln 2, ln 2).
     generator = np.random.default_rng(15)
     samples, energies = harmonic_samples(generator, STIFFNESS, CENTRES, 2000)
     result = mbar(energies, [2000] * 3)
@@ -322,7 +322,7 @@ def test_mbar_harmonic_states():
 
 
 def test_mbar_covariance_matches_the_sample_space_form():
-    # REFERENCE_DATA §5 [num]: Θ = Wᵀ(I_N − W diag(N_k) Wᵀ)⁺W equals the K×K SVD form.
+    # docs/references.md §7b [num]: Θ = Wᵀ(I_N − W diag(N_k) Wᵀ)⁺W equals the K×K SVD form.
     generator = np.random.default_rng(16)
     _, energies = harmonic_samples(generator, STIFFNESS, CENTRES, 60)
     counts = np.array([60, 60, 60])
@@ -335,7 +335,7 @@ def test_mbar_covariance_matches_the_sample_space_form():
 
 
 def test_mbar_two_states_equals_bar():
-    # REFERENCE_DATA §5 [num]: MBAR with K = 2 reproduces BAR exactly, estimate and variance.
+    # docs/references.md §7b [num]: MBAR with K = 2 reproduces BAR exactly, estimate and variance.
     generator = np.random.default_rng(17)
     _, energies = harmonic_samples(generator, STIFFNESS[:2], CENTRES[:2], 300)
     result = mbar(energies, [300, 300])
@@ -358,7 +358,7 @@ def test_mbar_expectations():
 
 def test_mbar_many_states_with_large_offsets():
     # Eight harmonic states, stiffness 1…64, centres 0…2, each shifted by a constant up to
-    # ±10³ kT: exact f_k − f_0 = ½ ln(k_k/k_0) + (shift_k − shift_0) (REFERENCE_DATA §2).
+    # ±10³ kT: exact f_k − f_0 = ½ ln(k_k/k_0) + (shift_k − shift_0) (docs/references.md §3a).
     generator = np.random.default_rng(26)
     stiffness = np.geomspace(1.0, 64.0, 8)
     centres = np.linspace(0.0, 2.0, 8)
@@ -391,7 +391,7 @@ def test_mbar_rejects_bad_input():
 
 
 def test_mbar_coverage():
-    # REFERENCE_DATA §5 [num], N_k = 200: replicate var (0.001256, 0.003722),
+    # Shirts & Chodera 2008; docs/references.md §7b [num], N_k = 200: replicate var (0.001256, 0.003722),
     # asymptotic (0.001236, 0.003705).
     generator = np.random.default_rng(24)
     found, errors, mean_x, mean_x_errors = [], [], [], []
@@ -423,12 +423,15 @@ def test_mbar_coverage():
 # --------------------------------------------------------------------------------------------
 
 def harmonic_derivative(lambdas, dimensions, k_a, k_b):
-    """⟨∂u/∂λ⟩ = (d/2)(k_B − k_A)/k(λ) on u(λ) = (1−λ)u_A + λu_B, equal centres (REFERENCE_DATA §2)."""
+    """⟨∂u/∂λ⟩ = (d/2)(k_B − k_A)/k(λ) on u(λ) = (1−λ)u_A + λu_B, equal centres.
+
+    docs/references.md §3b.
+    """
     return 0.5 * dimensions * (k_b - k_a) / ((1.0 - lambdas) * k_a + lambdas * k_b)
 
 
 def test_ti_quadrature_on_the_harmonic_path():
-    # REFERENCE_DATA §2 [num]: 3-D, k_A = 1 → k_B = 2: Δf = 1.5 ln 2 = 1.0397207708399179.
+    # docs/references.md §3a [num]: 3-D, k_A = 1 → k_B = 2: Δf = 1.5 ln 2 = 1.0397207708399179.
     exact = 1.5 * LN2
     nodes, weights = gauss_legendre_windows(8)
     assert weights.sum() == pytest.approx(1.0, abs=1e-15)
@@ -454,7 +457,7 @@ def test_ti_quadrature_on_the_harmonic_path():
 
 
 def test_ti_coverage():
-    # 1-D harmonic path k_A = 1 → k_B = 4, exact Δf = ½ ln 4 = ln 2 (REFERENCE_DATA §2).  Each
+    # 1-D harmonic path k_A = 1 → k_B = 4, exact Δf = ½ ln 4 = ln 2 (docs/references.md §3a).  Each
     # window draws x ~ N(0, 1/k(λ)) exactly; ∂u/∂λ = ½(k_B − k_A)x².
     generator = np.random.default_rng(25)
     nodes, _ = gauss_legendre_windows(6)
@@ -474,7 +477,7 @@ def test_ti_coverage():
 # --------------------------------------------------------------------------------------------
 
 def test_neighbour_bar_ladder():
-    # Five harmonic windows k = 1..16 (geometric), exact f_4 − f_0 = ½ ln 16 (REFERENCE_DATA §2).
+    # Five harmonic windows k = 1..16 (geometric), exact f_4 − f_0 = ½ ln 16 (docs/references.md §3a).
     generator = np.random.default_rng(20)
     stiffness = np.geomspace(1.0, 16.0, 5)
     centres = np.zeros(5)

@@ -1,10 +1,10 @@
 """Excess chemical potential of the Lennard-Jones fluid by soft-core decoupling vs published EOS.
 
-Independent references (implemented here from REFERENCE_DATA §7, autodiff in float64):
+Independent references (implemented here from docs/references.md §9, autodiff in float64):
 * Kolafa & Nezbeda 1994, Fluid Phase Equilib. 100, 1 (primary): βμ_ex = βA_res + Z − 1;
 * Johnson, Zollweg & Gubbins 1993, Mol. Phys. 78, 591 (secondary, printed only).
 Both describe the full, untruncated LJ potential; the tool's model truncates at r_c = 2.5σ and
-adds the analytic tail inside the energy (REFERENCE_DATA §7e), so its μ_ex is for the full
+adds the analytic tail inside the energy (docs/references.md §9e), so its μ_ex is for the full
 potential too.
 
 Finite size: the test runs N = 108 particles (NVT, ρ* = 0.3, T* = 2), where μ_ex differs from
@@ -28,7 +28,7 @@ from fe_tool.systemfile import load_system
 
 SYSTEMS = pathlib.Path(__file__).resolve().parent.parent / "systems"
 
-# ---------------------------------------------------------------- Kolafa & Nezbeda 1994 (REFERENCE_DATA §7b)
+# ---------------------------------------------------------------- Kolafa & Nezbeda 1994 (docs/references.md §9b)
 KN_GAMMA = 1.92907278
 KN_C = {  # C_ij: i = 2 × temperature exponent, j = density exponent
     0: {2: 2.01546797, 3: -28.17881636, 4: 28.28313847, 5: -10.42402873},
@@ -54,7 +54,7 @@ def kn_residual_free_energy(temperature, density):
     return total
 
 
-# ---------------------------------------------------------------- JZG 1993 (REFERENCE_DATA §7a)
+# ---------------------------------------------------------------- JZG 1993 (docs/references.md §9c)
 JZG_X = [None, 0.8623085097507421, 2.976218765822098, -8.402230115796038, 0.1054136629203555,
          -0.8564583828174598, 1.582759470107601, 0.7639421948305453, 1.753173414312048, 2.798291772190376e3,
          -4.8394220260857657e-2, 0.9963265197721935, -3.698000291272493e1, 2.084012299434647e1,
@@ -93,20 +93,20 @@ def jzg_residual_free_energy(temperature, density):
 
 
 def beta_excess_chemical_potential(residual_free_energy, temperature, density):
-    """βμ_ex = βA_res/N + Z − 1, with Z − 1 = ρ ∂(βA_res/N)/∂ρ (REFERENCE_DATA §7)."""
+    """βμ_ex = βA_res/N + Z − 1, with Z − 1 = ρ ∂(βA_res/N)/∂ρ (docs/references.md §9a)."""
     beta_a = lambda rho: residual_free_energy(temperature, rho) / temperature  # noqa: E731
     return float(beta_a(density) + density * jax.grad(beta_a)(density))
 
 
 def test_equations_of_state_reproduce_the_published_check_values():
-    # KN check values quoted in REFERENCE_DATA §7b (to 1e-7 relative there)
+    # KN check values of a public transcription, quoted in docs/references.md §9b (reproduced to 1e-7 relative there)
     u = lambda t, rho: kn_residual_free_energy(t, rho) - t * jax.grad(kn_residual_free_energy, 0)(t, rho)  # noqa: E731
     p = lambda t, rho: rho * t + rho**2 * jax.grad(kn_residual_free_energy, 1)(t, rho)  # noqa: E731
     assert float(u(1.3, 0.2)) == pytest.approx(-1.53715, abs=2e-5)
     assert float(u(1.3, 0.4)) == pytest.approx(-2.80602, abs=2e-5)
     assert float(p(1.3, 0.2)) == pytest.approx(0.121479, abs=2e-6)
     assert float(p(1.3, 0.4)) == pytest.approx(0.112533, abs=2e-6)
-    # βμ_ex table of REFERENCE_DATA §7d (KN and JZG columns, 5 decimals)
+    # βμ_ex table of docs/references.md §9d (KN and JZG columns, 5 decimals)
     assert beta_excess_chemical_potential(kn_residual_free_energy, 2.0, 0.3) == pytest.approx(-0.48710, abs=1e-5)
     assert beta_excess_chemical_potential(kn_residual_free_energy, 2.0, 0.5) == pytest.approx(-0.28006, abs=1e-5)
     assert beta_excess_chemical_potential(jzg_residual_free_energy, 2.0, 0.3) == pytest.approx(-0.47184, abs=1e-5)

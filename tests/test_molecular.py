@@ -33,7 +33,7 @@ from fe_tool.systemfile import SystemFileError, load_system, parse_system
 from nested_edit import edited
 
 SYSTEMS = pathlib.Path(__file__).resolve().parent.parent / "systems"
-GAS_CONSTANT_KJ = 0.00831446261815324  # CODATA 2018 R in kJ/(mol K) (REFERENCE_DATA §1)
+GAS_CONSTANT_KJ = 0.00831446261815324  # CODATA 2018 R in kJ/(mol K) (docs/references.md §2)
 
 
 def _fluid(n=12, edge=4.0, seed=3):
@@ -69,8 +69,8 @@ def test_soft_core_path_end_states_equal_the_plain_end_energies():
     term = nonbonded_term(n - 1, lennard_jones=lennard_jones_parameters(sigma, np.ones(n - 1)), charges=charges,
                           cutoff=1.9, reaction_field_dielectric=20.0, units="reduced", tail_correction_box=4.0)
     environment = float(assemble([term], box=4.0, units="reduced").energy(rest))
-    # the model's tail uses the textbook N² convention (REFERENCE_DATA §7e), which counts the
-    # particle's own self term (2π/V)∫u₀₀r²dr in both end states; it is a constant and cancels in ΔF
+    # the model's tail uses the textbook N² convention (Allen & Tildesley 1987; docs/references.md §9e), which
+    # counts the particle's own self term (2π/V)∫u₀₀r²dr in both end states; it is a constant and cancels in ΔF
     rc, volume = 1.9, 64.0
     environment += 2 * math.pi / volume * 4.0 * (rc**-9 / 9.0 - rc**-3 / 3.0)
     assert float(energy(x, jnp.asarray(1.0))) * kT == pytest.approx(environment, rel=1e-12, abs=1e-12)
@@ -223,14 +223,14 @@ def test_xyz_positions_and_catalogue_files_parse():
     for name, count in (("lj_fluid_decoupling", 108), ("lj_fluid_decoupling_256", 256)):
         lj = load_system(SYSTEMS / f"{name}.toml")
         assert lj.unit_system == "reduced" and lj.particles["tail_correction"] and lj.start_a.shape == (count, 3)
-        # ρ* = 0.3, the state point of the reference (REFERENCE_DATA §7d)
+        # ρ* = 0.3, the state point of the reference (Kolafa & Nezbeda 1994; docs/references.md §9d)
         assert count / np.prod(lj.particles["box"]) == pytest.approx(0.3, rel=1e-12)
 
 
 # ------------------------------------------------------------------ catalogue references reproduced
 
 def _mueller_brown_reference(scale, stiffness):
-    # Müller & Brown 1979, Theor. Chim. Acta 53, 75, footnote 7 (REFERENCE_DATA §6)
+    # Müller & Brown 1979, Theor. Chim. Acta 53, 75, footnote 7 (docs/references.md §8)
     A = [-200.0, -100.0, -170.0, 15.0]
     a = [-1.0, -1.0, -6.5, 0.7]
     b = [0.0, 0.0, 11.0, 0.6]
@@ -257,7 +257,7 @@ def test_mueller_brown_reference_is_reproduced():
 
 
 def _torsion_free_energy(coefficients, kT):
-    # Ryckaert & Bellemans 1978 form, V(φ) = Σ C_n (−cos φ)^n, uniform measure in φ (REFERENCE_DATA §8)
+    # Ryckaert & Bellemans 1978 form, V(φ) = Σ C_n (−cos φ)^n, uniform measure in φ (docs/references.md §10)
     def v(phi):
         return sum(cn * (-math.cos(phi)) ** n for n, cn in enumerate(coefficients))
 

@@ -12,7 +12,7 @@ LN2 = float(np.log(2.0))
 
 def _harmonic_pair():
     # k_A = 1 at 0 -> k_B = 4 at 1.5: ΔF = ½ ln 4 = ln 2 (closed form, Tuckerman 2010, OUP;
-    # REFERENCE_DATA §2, checked there by quadrature)
+    # docs/references.md §3a, re-verified there by quadrature)
     return LinearPath(lambda x: 0.5 * jnp.sum(x**2), lambda x: 2.0 * jnp.sum((x - 1.5) ** 2), 1.0)
 
 
@@ -94,7 +94,8 @@ def test_dragged_trap_work_matches_exact_overdamped_result():
     """Mean and variance of the work of a dragged trap: ⟨W⟩ = γv²[t − τ(1 − e^{−t/τ})], Var W = 2kT⟨W⟩.
 
     Mazonka & Jarzynski 1999 (arXiv:cond-mat/9912121 [mem]); van Zon & Cohen 2003, PRE 67, 046102.
-    Formulas re-derived and checked by simulation in REFERENCE_DATA §3.  Here k = γ = v = kT = 1, t = 2:
+    Formulas derived and checked by quadrature and simulation in docs/references.md §4.
+    Here k = γ = v = kT = 1, t = 2:
     ⟨W⟩ = 1 + e⁻² and Var W = 2(1 + e⁻²).  The time step (2e-3) adds an O(Δt) bias far below the tolerance.
     """
     steps, dt = 1000, 2e-3

@@ -41,7 +41,7 @@ def test_kj_per_mol_file_gives_kT_from_codata_gas_constant():
     data = dict(MINIMAL, units="kJ/mol", temperature=298.15)
     del data["kT"]
     system = parse_system(data)
-    # kT at 298.15 K = 2.478957029602389 kJ/mol (CODATA 2018 R; REFERENCE_DATA §1)
+    # kT at 298.15 K = 2.478957029602389 kJ/mol (CODATA 2018 R; docs/references.md §2)
     assert abs(system.kT - 2.478957029602389) < 1e-12
 
 

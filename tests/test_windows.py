@@ -29,7 +29,7 @@ def test_ladder_gauss_legendre_includes_end_states():
 
 @pytest.mark.parametrize("dim, k_b, centre_b", [(1, 4.0, [1.5]), (3, 10.0, [0.5, -0.3, 0.2])])
 def test_windows_harmonic_closed_form(dim, k_b, centre_b):
-    # ΔF = (kT/2) Σ ln(k_B/k_A), centres cancel (Tuckerman 2010, OUP; REFERENCE_DATA §2)
+    # ΔF = (kT/2) Σ ln(k_B/k_A), centres cancel (Tuckerman 2010, OUP; docs/references.md §3a)
     ea, eb, xa, xb = harmonic_pair(dim, 1.0, k_b, centre_b)
     exact = 0.5 * dim * math.log(k_b)
     r = estimate_windows(ea, eb, xa, xb, kT=1.0, seed=3, budget=100_000, windows=4)
@@ -44,7 +44,7 @@ def test_windows_harmonic_closed_form(dim, k_b, centre_b):
 
 
 def test_ti_derivative_matches_harmonic_formula():
-    # ⟨∂u/∂λ⟩_λ = (d/2)(k_B − k_A)/k(λ) for equal centres (REFERENCE_DATA §2)
+    # ⟨∂u/∂λ⟩_λ = (d/2)(k_B − k_A)/k(λ) for equal centres (docs/references.md §3b)
     dim, k_a, k_b = 2, 1.0, 4.0
     ea, eb, xa, xb = harmonic_pair(dim, k_a, k_b, [0.0, 0.0])
     r = estimate_windows(ea, eb, xa, xb, seed=5, budget=150_000, windows=4, spacing="gauss-legendre")

@@ -73,7 +73,8 @@ def test_same_seed_same_number_and_fixed_protocol():
     assert r1.delta_f == r2.delta_f and r1.stderr == r2.stderr
     np.testing.assert_array_equal(r1.work_forward, r2.work_forward)
     assert r1.settings["switching_steps"] == 40 and r1.work_forward.size == 128
-    # −0.1438410362258904 = ½ ln(3·0.5/2) (REFERENCE_DATA §2, checked by dblquad there)
+    # −0.1438410362258904 = ½ ln(3·0.5/2) (Tuckerman 2010, OUP; docs/references.md §3a,
+    # re-verified there by dblquad)
     _assert_close(r1, -0.1438410362258904)
     r3 = fe_tool.estimate(ua, ub, np.zeros(2), np.array([0.7, -0.4]), **{**kwargs, "seed": 6})
     assert r3.delta_f != r1.delta_f

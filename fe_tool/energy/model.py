@@ -175,7 +175,7 @@ class Nonbonded(Term):
     annihilating), linear in λ_LJ and exact at both end states. With T_ab = (2π/V) Σ N_a N_b
     ∫_{r_c}^∞ u_ab r² dr, T_env = T(env, env), T_cross = 2 T(group, env) and
     T_internal = T(group, group), so the coupled state has the textbook N² form
-    (REFERENCE_DATA §7e). For one alchemical particle, coupled − decoupled tail =
+    (Allen & Tildesley 1987; docs/references.md §9e). For one alchemical particle, coupled − decoupled tail =
     (4π/V) N_env ∫ u r² dr = μ_tail at the environment density.
     """
 

@@ -34,7 +34,7 @@ def gaussian_crossing(mean_forward, std_forward, mean_reverse, std_reverse):
     root lies between −μ_R and μ_F (possible for noisy samples) the root nearer to
     (μ_F − μ_R)/2 is taken.
 
-    Example (Goette & Grubmüller 2009 form; REFERENCE_DATA §5):
+    Example (Goette & Grubmüller 2009 form; docs/references.md §5c):
         >>> gaussian_crossing(5.0, 2.5, 1.0, 2.0)   # 1.85134071
     """
     mf, sf, mr, sr = np.broadcast_arrays(*(np.asarray(v, dtype=np.float64)
