@@ -85,6 +85,20 @@ system as written; ``[change]`` says how B differs, and :mod:`fe_tool.alchemy` b
     group = "backbone_torsion"
     coefficients = [4.64, 6.08, -6.56, -1.53, 13.12, -15.75]
 
+**Files a system file names** (``[particles] file``, ``[settings] control`` and ``save_control``)
+are resolved relative to the system file's folder (the current folder for :func:`parse_system`
+on a dict), after resolving symlinks and ``..``, and refused if they lead outside it unless the
+caller passes ``allow_outside_files=True``. Only regular files are read (not devices, pipes or
+folders), each at most ``MAX_SYSTEM_FILE_BYTES`` / ``MAX_DATA_FILE_BYTES`` (64 MiB).
+
+**Values** are checked for their type, whatever the key: a number in quotes (``kT = "1"``),
+true/false where a number belongs, or text inside a list of numbers is refused naming the key.
+The ``[settings]`` whole numbers (``budget``, ``seed``, ``switching_steps``, ``trajectories``,
+``chains``) accept a float that is a whole number (``budget = 1e5`` is 100000), never a fraction.
+``[reference] tolerance`` must be positive, ``delta_f`` finite. Error messages show a value only
+when it is a number or true/false; text and lists are described by kind and size, so a message
+never repeats file contents (TOML syntax errors give position and reason only).
+
 Direction: ΔF = F_B − F_A, so for a decoupling file (A coupled, B decoupled) the excess
 chemical potential (or solvation free energy) is μ_ex = −ΔF. Results are labelled with the
 energy unit ("kJ/mol", or "ε (reduced LJ units)"); ``System.unit_system`` keeps the full name.
@@ -92,8 +106,10 @@ energy unit ("kJ/mol", or "ε (reduced LJ units)"); ``System.unit_system`` keeps
 from __future__ import annotations
 
 import dataclasses
+import math
 import os
 import pathlib
+import re
 from typing import Any, Callable
 
 import jax.numpy as jnp
@@ -105,6 +121,7 @@ except ModuleNotFoundError:  # Python < 3.11
     import tomli as tomllib
 
 from .energy import fields
+from .filesafety import open_regular_file, read_regular_file, resolve_inside
 
 TOP_KEYS = {"name", "description", "units", "kT", "temperature", "end_a", "end_b", "reference", "settings"}
 UNIT_NAMES = ("reduced", "kJ/mol", "kcal/mol")
@@ -156,8 +173,68 @@ class System:
 
 # ------------------------------------------------------------------ small validators
 
+def _describe(value: Any) -> str:
+    """What a value is, for error messages: numbers and true/false are shown, text and lists only
+    by kind and size (an error message never repeats file contents)."""
+    if value is None:
+        return "nothing (the key is missing)"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, int):
+        return repr(value) if abs(value) < 10**15 else f"a whole number of {len(str(abs(value)))} digits"
+    if isinstance(value, float):
+        return repr(value)
+    if isinstance(value, str):
+        try:
+            float(value)
+            hint = " holding a number in quotes (remove the quotes)"
+        except ValueError:
+            hint = ""
+        return f"text of {_count(len(value), 'character')}{hint}"
+    if isinstance(value, list):
+        leaves = _leaves(value)
+        mixed = [name for kind, name in ((str, "text"), (bool, "true/false"), (dict, "tables")) if
+                 any(isinstance(v, kind) for v in leaves)]
+        return f"a list of {_count(len(value), 'value')}" + (f" including {' and '.join(mixed)}" if mixed else "")
+    if isinstance(value, dict):
+        return f"a table of {_count(len(value), 'key')}"
+    return f"a value of type {type(value).__name__}"
+
+
+def _count(n: int, noun: str) -> str:
+    return f"{n} {noun}" + ("" if n == 1 else "s")
+
+
+def _leaves(value: Any) -> list:
+    return [leaf for v in value for leaf in _leaves(v)] if isinstance(value, list) else [value]
+
+
 def _fail(key: str, expected: str, got: Any) -> None:
-    raise SystemFileError(f"{key}: expected {expected}, got {got!r}")
+    raise SystemFileError(f"{key}: expected {expected}, got {_describe(got)}")
+
+
+def _is_number(value: Any) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+def _finite(value: Any) -> bool:
+    try:
+        return _is_number(value) and math.isfinite(float(value))
+    except OverflowError:  # a whole number too large for a float
+        return False
+
+
+def _numeric_array(value: Any, key: str, expected: str) -> np.ndarray:
+    """A (nested) list of numbers as a float array; text, true/false and ragged lists are refused."""
+    def numbers_only(v: Any) -> bool:
+        return all(numbers_only(u) for u in v) if isinstance(v, list) else _finite(v)
+
+    if not numbers_only(value):
+        _fail(key, expected + " (finite numbers, not text or true/false)", value)
+    try:
+        return np.asarray(value, dtype=np.float64)
+    except (TypeError, ValueError):  # ragged rows
+        _fail(key, expected, value)
 
 
 def _number(table: dict, key: str, where: str, default: Any = None, positive: bool = False) -> float:
@@ -166,7 +243,7 @@ def _number(table: dict, key: str, where: str, default: Any = None, positive: bo
             _fail(f"{where}.{key}", "a number (this key is required)", None)
         return default
     value = table[key]
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not np.isfinite(value):
+    if not _finite(value):
         _fail(f"{where}.{key}", "a finite number", value)
     if positive and value <= 0:
         _fail(f"{where}.{key}", "a positive number", value)
@@ -180,13 +257,12 @@ def _vector(table: dict, key: str, where: str, length: int | None = None, defaul
             _fail(f"{where}.{key}", "a list of numbers (this key is required)", None)
         return np.asarray(default, dtype=np.float64)
     value = table[key]
-    if isinstance(value, (int, float)) and not isinstance(value, bool):
+    if _is_number(value):
         value = [value] * (length or 1)
-    try:
-        arr = np.asarray(value, dtype=np.float64)
-    except (TypeError, ValueError):
+    if not isinstance(value, list):
         _fail(f"{where}.{key}", "a list of numbers", value)
-    if arr.ndim != 1 or not np.all(np.isfinite(arr)):
+    arr = _numeric_array(value, f"{where}.{key}", "a flat list of numbers")
+    if arr.ndim != 1:
         _fail(f"{where}.{key}", "a flat list of finite numbers", value)
     if length is not None and arr.size != length:
         _fail(f"{where}.{key}", f"{length} numbers (one per coordinate)", value)
@@ -195,10 +271,18 @@ def _vector(table: dict, key: str, where: str, length: int | None = None, defaul
     return arr
 
 
+def _text(table: dict, key: str, where: str, default: str) -> str:
+    value = table.get(key, default)
+    if not isinstance(value, str):
+        _fail(f"{where}.{key}" if where else key, "text (a string in quotes)", value)
+    return value
+
+
 def _check_keys(table: dict, allowed: set[str], where: str) -> None:
     unknown = sorted(set(table) - allowed)
     if unknown:
-        raise SystemFileError(f"{where}: unknown key(s) {unknown}; allowed keys are {sorted(allowed)}")
+        shown = [str(k)[:40] for k in unknown[:5]] + (["..."] if len(unknown) > 5 else [])
+        raise SystemFileError(f"{where}: unknown key(s) {shown}; allowed keys are {sorted(allowed)}")
 
 
 # ------------------------------------------------------------------ fields
@@ -236,7 +320,7 @@ def _end_state(table: Any, where: str, energy_scale: float, dim: int | None = No
     if not isinstance(table, dict):
         _fail(where, "a table such as [end_a] with a 'field' and its parameters", table)
     kind = table.get("field")
-    if kind not in FIELDS:
+    if not isinstance(kind, str) or kind not in FIELDS:
         _fail(f"{where}.field", f"one of {sorted(FIELDS)}", kind)
     builder, allowed = FIELDS[kind]
     _check_keys(table, allowed | {"field", "start"}, where)
@@ -250,47 +334,254 @@ def _end_state(table: Any, where: str, energy_scale: float, dim: int | None = No
 
 # ------------------------------------------------------------------ the file
 
-def load_system(path: str | os.PathLike) -> System:
-    """Read and validate a system file; raise :class:`SystemFileError` naming any bad key."""
+MAX_SYSTEM_FILE_BYTES = 64 * 2**20  # a system file larger than this is refused unread
+MAX_DATA_FILE_BYTES = 64 * 2**20  # likewise an XYZ (or other data) file a system file names
+_TOML_POSITION = re.compile(r"\(at (line \d+, column \d+|end of document)\)\s*$")
+# tomllib's reasons, in our words: some of its messages quote the offending key or character
+_TOML_REASONS = (
+    ("Cannot declare", "a key or table is declared twice"),
+    ("Cannot overwrite a value", "a value is set twice"),
+    ("Cannot mutate immutable namespace", "a table or array is extended after it was closed"),
+    ("Cannot redefine namespace", "a table is defined twice"),
+    ("Duplicate inline table key", "a key is repeated in an inline table"),
+    ("Found invalid character", "an invalid character"),
+    ("Illegal character", "an illegal character in a string"),
+    ("Unclosed array", "an array is not closed with ']'"),
+    ("Unclosed inline table", "an inline table is not closed with '}'"),
+    ("Unterminated string", "a string is not closed"),
+    ("Expected '\"'", "a string is not closed"),
+    ("Expected \"'\"", "a string is not closed"),
+    ("Invalid value", "a value that is not valid TOML (text needs quotes)"),
+    ("Invalid statement", "a line that is neither 'key = value' nor a [table] header"),
+    ("Expected '=' after a key", "a key without '= value'"),
+    ("Expected newline or end of document", "more than one statement on a line"),
+    ("Invalid initial character for a key part", "a key that starts with an invalid character"),
+    ("Expected ']' at the end of a table declaration", "a [table] header not closed with ']'"),
+    ("Expected ']]' at the end of an array declaration", "a [[table]] header not closed with ']]'"),
+    ("Invalid date or datetime", "an invalid date or time"),
+    ("Unescaped", "an unescaped backslash in a string"),
+    ("Invalid hex value", "an invalid \\u escape in a string"),
+    ("Escaped character is not a Unicode scalar value", "an invalid \\u escape in a string"),
+)
+
+
+def toml_error_text(err: Exception) -> str:
+    """Position and reason of a TOML decode error, without the snippet of the file it may quote."""
+    message = str(err)
+    match = _TOML_POSITION.search(message)
+    where = match.group(1) if match else "an unknown position"
+    reason = next((ours for start, ours in _TOML_REASONS if message.startswith(start)), "invalid TOML syntax")
+    return f"{reason} (at {where})"
+
+
+def load_system(path: str | os.PathLike, *, allow_outside_files: bool = False) -> System:
+    """Read and validate a system file; raise :class:`SystemFileError` naming any bad key.
+
+    Args:
+        path: the system file (a regular file of at most ``MAX_SYSTEM_FILE_BYTES``, UTF-8 TOML).
+        allow_outside_files: let the file name data files (``[particles] file``, a saved
+            ``[settings] control``, ``save_control``) outside its own folder. By default every
+            such path is resolved (symlinks and ``..`` included) relative to the system file's
+            folder and refused if it leads outside it, so a shared system file cannot make the
+            tool read or write elsewhere.
+    """
     path = pathlib.Path(path)
-    if not path.exists():
+    if not path.exists() and not path.is_symlink():
         raise SystemFileError(f"system file {str(path)!r} does not exist; `fe-tool list` shows the bundled systems")
+    raw = read_regular_file(path, MAX_SYSTEM_FILE_BYTES, error=SystemFileError, what="system file")
     try:
-        data = tomllib.loads(path.read_text())
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as err:
+        raise SystemFileError(f"{path.name}: not UTF-8 text (undecodable byte at offset {err.start})") from None
+    try:
+        data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
-        raise SystemFileError(f"{path.name}: not valid TOML ({err})") from None
-    return parse_system(data, source=str(path))
+        raise SystemFileError(f"{path.name}: not valid TOML: {toml_error_text(err)}") from None
+    except RecursionError:
+        raise SystemFileError(f"{path.name}: not valid TOML: arrays or tables nested too deeply") from None
+    return parse_system(data, source=str(path), allow_outside_files=allow_outside_files)
 
 
-def _reference_and_settings(data: dict) -> tuple[dict | None, dict]:
-    """The optional [reference] (ΔF in the file's energy unit) and [settings] (estimate options)."""
-    reference = None
-    if "reference" in data:
-        ref = data["reference"]
-        if not isinstance(ref, dict):
-            _fail("reference", "a table with delta_f, source and tolerance", ref)
-        _check_keys(ref, {"delta_f", "source", "tolerance"}, "reference")
-        reference = {
-            "delta_f": _number(ref, "delta_f", "reference"),
-            "source": str(ref.get("source", "not given")),
-            "tolerance": _number(ref, "tolerance", "reference", default=float("nan")),
-        }
+def _reference(data: dict) -> dict | None:
+    """The optional [reference]: ΔF in the file's energy unit, its source and a positive tolerance."""
+    if "reference" not in data:
+        return None
+    ref = data["reference"]
+    if not isinstance(ref, dict):
+        _fail("reference", "a table with delta_f, source and tolerance", ref)
+    _check_keys(ref, {"delta_f", "source", "tolerance"}, "reference")
+    tolerance = float("nan")  # absent: the result is compared within its own error bar only
+    if "tolerance" in ref:
+        tolerance = _number(ref, "tolerance", "reference", positive=True)
+    return {"delta_f": _number(ref, "delta_f", "reference"), "source": _text(ref, "source", "reference", "not given"),
+            "tolerance": tolerance}
+
+
+# [settings]: the type each estimate() option takes in a file (whole numbers with their minimum)
+WHOLE_NUMBER_SETTINGS = {"budget": 1, "switching_steps": 1, "trajectories": 2, "chains": 4, "seed": 0}
+TEXT_SETTINGS = ("method", "spacing", "units")
+SWITCH_SETTINGS = ("exchange", "precondition", "progress")
+NOT_IN_FILES = {"path": "a path object cannot be written in a file; describe the change in [change]",
+                "reference": "give the known answer in a [reference] table"}
+
+
+def _whole_number(value: Any, key: str, minimum: int) -> int:
+    """An integer ≥ ``minimum``; a float that is a whole number (1e5, 100000.0) is taken as that integer."""
+    if isinstance(value, float) and math.isfinite(value) and value.is_integer() and abs(value) <= 2.0**53:
+        value = int(value)
+    if not isinstance(value, int) or isinstance(value, bool) or not minimum <= value < 2**63:
+        _fail(key, f"a whole number ≥ {minimum} (e.g. 100000 or 1e5; no quotes, no fraction)", value)
+    return value
+
+
+def _file_setting(value: Any, key: str, folder: pathlib.Path, allow_outside_files: bool, must_exist: bool) -> str:
+    """A file named in [settings], resolved in the system file's folder."""
+    if not isinstance(value, str):
+        _fail(key, "a file name (text)", value)
+    target = resolve_inside(folder, value, allow_outside=allow_outside_files, error=SystemFileError, what=key)
+    if must_exist:
+        open_regular_file(target, 2**62, error=SystemFileError, what=key).close()
+    elif target.exists() and not target.is_file():
+        raise SystemFileError(f"{key}: {target} exists and is not a regular file; name a new or ordinary file")
+    return str(target)
+
+
+def _network_table(value: Any, key: str) -> None:
+    """[settings.control_settings.network]: a registered control kind and its constructor's keywords."""
+    import inspect
+
+    from .control import CONTROL_KINDS
+
+    if not isinstance(value, dict):
+        _fail(key, "a table such as {kind = \"mlp\", width = 32}", value)
+    kind = value.get("kind", "mlp")
+    if not isinstance(kind, str) or kind not in CONTROL_KINDS:
+        _fail(f"{key}.kind", f"one of {sorted(CONTROL_KINDS)}", kind)
+    parameters = {n: p.default for n, p in inspect.signature(CONTROL_KINDS[kind].__init__).parameters.items()
+                  if n not in ("self", "shape", "scales", "key", "path")}
+    _check_keys(value, set(parameters) | {"kind"}, key)
+    for name, item in value.items():
+        default = parameters.get(name)
+        if name == "kind":
+            continue
+        if isinstance(default, int) and not isinstance(default, bool):
+            _whole_number(item, f"{key}.{name}", 1)
+        elif isinstance(item, list):
+            _numeric_array(item, f"{key}.{name}", "a list of numbers")
+        elif not _finite(item):
+            _fail(f"{key}.{name}", "a number or a list of numbers", item)
+
+
+def _control_settings(value: Any) -> dict:
+    """[settings.control_settings]: keyword arguments of prepare_control, each of its default's type."""
+    import inspect
+
+    from .control import prepare_control
+
+    if not isinstance(value, dict):
+        _fail("settings.control_settings", "a table of control training settings", value)
+    parameters = {n: p.default for n, p in inspect.signature(prepare_control).parameters.items()
+                  if p.kind is inspect.Parameter.KEYWORD_ONLY and n not in ("mode", "budget", "progress", "warm_start")}
+    _check_keys(value, set(parameters), "settings.control_settings")
+    typed = {"training_steps": 1, "check_every": 1}  # None by default, whole numbers when given
+    for name, item in value.items():
+        key, default = f"settings.control_settings.{name}", parameters[name]
+        if name == "network":
+            _network_table(item, key)
+        elif isinstance(default, bool):
+            if not isinstance(item, bool):
+                _fail(key, "true or false", item)
+        elif isinstance(default, str):
+            if not (isinstance(item, str) or (name == "learn_steps" and isinstance(item, bool))):
+                _fail(key, "text (a string in quotes)", item)
+        elif isinstance(default, int) or name in typed:
+            value[name] = _whole_number(item, key, typed.get(name, 0))
+        else:  # the float settings and learning_rate
+            value[name] = _number(value, name, "settings.control_settings", positive=True)
+    return value
+
+
+def _setting(name: str, value: Any, folder: pathlib.Path, allow_outside_files: bool) -> Any:
+    """One [settings] value checked for its type (the workflow checks ranges and combinations)."""
+    from .workflow import CONTROL_MODES, METHODS
+
+    key = f"settings.{name}"
+    if name in NOT_IN_FILES:
+        raise SystemFileError(f"{key}: not allowed in a system file; {NOT_IN_FILES[name]}")
+    if name in WHOLE_NUMBER_SETTINGS:
+        return _whole_number(value, key, WHOLE_NUMBER_SETTINGS[name])
+    if name in SWITCH_SETTINGS:
+        if not isinstance(value, bool):
+            _fail(key, "true or false", value)
+        return value
+    if name in TEXT_SETTINGS:
+        if not isinstance(value, str) or (name == "method" and value not in METHODS):
+            _fail(key, f"one of {list(METHODS)}" if name == "method" else "text (a string in quotes)", value)
+        return value
+    if name == "step_scale":
+        return _number({name: value}, name, "settings", positive=True)
+    if name == "schedule" and isinstance(value, str):
+        return value
+    if name == "windows" and not isinstance(value, list):
+        return _whole_number(value, key, 2)
+    if name in ("schedule", "windows"):
+        lams = _numeric_array(value, key, "a name or a flat list of λ values") if isinstance(value, list) else None
+        if lams is None or lams.ndim != 1:
+            _fail(key, "a name or a flat list of λ values", value)
+        return lams.tolist()
+    if name in ("starts_a", "starts_b"):
+        if not isinstance(value, list) or not value:
+            _fail(key, "a list of start configurations", value)
+        return _numeric_array(value, key, "a list of start configurations").tolist()
+    if name == "control":
+        if not isinstance(value, str):
+            _fail(key, f"one of {list(CONTROL_MODES)} or a saved control file name", value)
+        return value if value in CONTROL_MODES else _file_setting(value, key, folder, allow_outside_files, True)
+    if name == "save_control":
+        return _file_setting(value, key, folder, allow_outside_files, False)
+    if name == "control_settings":
+        return _control_settings(dict(value) if isinstance(value, dict) else value)
+    return value
+
+
+def _reference_and_settings(data: dict, folder: pathlib.Path, allow_outside_files: bool) -> tuple[dict | None, dict]:
+    """The optional [reference] and [settings] (estimate options, each checked for its type)."""
     settings = data.get("settings", {})
     if not isinstance(settings, dict):
         _fail("settings", "a table of estimate() options", settings)
     from .workflow import OPTION_NAMES
 
     _check_keys(settings, set(OPTION_NAMES) | {"seed"}, "settings")
-    return reference, dict(settings)
+    checked = {name: _setting(name, value, folder, allow_outside_files) for name, value in settings.items()}
+    return _reference(data), checked
 
 
-def parse_system(data: dict, source: str = "<dict>") -> System:
-    """Validate an already-parsed system description (see the module docstring)."""
+def _data_folder(source: str) -> pathlib.Path:
+    """The folder a system file's relative paths start from (the current folder for a dict)."""
+    return pathlib.Path(source).parent.resolve() if source != "<dict>" else pathlib.Path.cwd().resolve()
+
+
+def _name_and_description(data: dict, source: str) -> tuple[str, str]:
+    return (_text(data, "name", "", pathlib.Path(source).stem), _text(data, "description", "", ""))
+
+
+def parse_system(data: dict, source: str = "<dict>", *, allow_outside_files: bool = False) -> System:
+    """Validate an already-parsed system description (see the module docstring).
+
+    Args:
+        data: the parsed TOML tables.
+        source: the file it came from; relative data paths start in its folder (the
+            current folder for ``"<dict>"``).
+        allow_outside_files: accept data paths that lead outside that folder
+            (see :func:`load_system`).
+    """
+    if not isinstance(data, dict):
+        _fail("top level", "a table of keys (a parsed system file)", data)
     if "particles" in data:
-        return _parse_particle_system(data, source)
+        return _parse_particle_system(data, source, allow_outside_files)
     _check_keys(data, TOP_KEYS, "top level")
     units = data.get("units", "reduced")
-    if units not in UNIT_NAMES:
+    if not isinstance(units, str) or units not in UNIT_NAMES:
         _fail("units", f"one of {list(UNIT_NAMES)}", units)
     if units == "reduced":
         if "temperature" in data:
@@ -308,10 +599,10 @@ def parse_system(data: dict, source: str = "<dict>") -> System:
             raise SystemFileError(f"{end}: missing; a system file needs tables [end_a] and [end_b]")
     energy_a, start_a = _end_state(data["end_a"], "end_a", 1.0)
     energy_b, start_b = _end_state(data["end_b"], "end_b", 1.0, dim=start_a.size)
-    reference, settings = _reference_and_settings(data)
+    reference, settings = _reference_and_settings(data, _data_folder(source), allow_outside_files)
+    name, description = _name_and_description(data, source)
     return System(
-        name=str(data.get("name", pathlib.Path(source).stem)),
-        description=str(data.get("description", "")),
+        name=name, description=description,
         energy_a=energy_a, energy_b=energy_b, start_a=start_a, start_b=start_b,
         kT=kT, units=units, reference=reference, settings=settings, source=source,
     )
@@ -329,8 +620,11 @@ RESTRAINT_FORMS = ("position", "distance")
 
 def _integer_rows(value: Any, key: str, width: int, n: int) -> np.ndarray:
     """(m, width) particle indices in [0, n)."""
+    def has_bool(v: Any) -> bool:
+        return any(has_bool(u) for u in v) if isinstance(v, list) else isinstance(v, bool)
+
     try:
-        arr = np.asarray(value)
+        arr = np.asarray([]) if has_bool(value) else np.asarray(value)
     except (TypeError, ValueError):
         arr = np.asarray([])
     if width == 1 and arr.ndim == 1:
@@ -376,29 +670,50 @@ def _per_row(table: dict, key: str, where: str, rows: int, positive: bool = Fals
     return arr
 
 
+TYPE_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_+\-]{0,31}")  # particle type names: short plain words
+
+
 def read_xyz(path: pathlib.Path, key: str = "particles.file") -> tuple[list[str], np.ndarray]:
     """Types and (n, 3) positions from an XYZ file: a count line, a comment line, then
-    ``type x y z`` per particle (lengths in the system file's length unit)."""
-    if not path.exists():
-        _fail(key, "an existing XYZ file (path relative to the system file)", str(path))
-    lines = path.read_text().splitlines()
+    ``type x y z`` per particle (lengths in the system file's length unit).
+
+    The file must be a regular UTF-8 file of at most ``MAX_DATA_FILE_BYTES``; errors give the
+    line number and what is wrong, never the line itself."""
+    raw = read_regular_file(path, MAX_DATA_FILE_BYTES, error=SystemFileError, what=key)
     try:
-        count = int(lines[0].split()[0])
-    except (IndexError, ValueError):
-        _fail(key, "an XYZ file whose first line is the particle count", lines[:1])
+        lines = raw.decode("utf-8").splitlines()
+    except UnicodeDecodeError as err:
+        raise SystemFileError(f"{key}: {path} is not UTF-8 text (undecodable byte at offset {err.start})") from None
+    first = lines[0].split() if lines else []
+    if not first or not re.fullmatch(r"[0-9]{1,12}", first[0]) or int(first[0]) < 1:
+        raise SystemFileError(f"{key}: {path} line 1: expected the particle count (a positive whole number) "
+                              "as in the XYZ format")
+    count = int(first[0])
     if len(lines) < count + 2:
-        _fail(key, f"{count} particle lines after the comment line (XYZ format)", f"{len(lines) - 2} lines")
-    types, positions = [], []
-    for number, line in enumerate(lines[2:count + 2], start=3):
-        fields_ = line.split()
-        try:
-            if len(fields_) < 4:
-                raise ValueError
-            positions.append([float(v) for v in fields_[1:4]])
-        except ValueError:
-            _fail(f"{key} line {number}", "'type x y z'", line)
-        types.append(fields_[0])
-    return types, np.asarray(positions, dtype=np.float64)
+        raise SystemFileError(f"{key}: {path}: the count line says {count} particles, but {max(len(lines) - 2, 0)} "
+                              "lines follow the comment line")
+    if any(line.strip() for line in lines[count + 2:]):
+        raise SystemFileError(f"{key}: {path}: non-blank lines after the {count} particle lines (one configuration "
+                              "per file; the count line must match the particle lines)")
+    types, positions = [], np.empty((count, 3))
+    for row, line in enumerate(lines[2:count + 2]):
+        words = line.split()
+        problem = None
+        if len(words) != 4:
+            problem = f"{len(words)} fields where 'type x y z' has 4"
+        elif not TYPE_NAME.fullmatch(words[0]):
+            problem = "the type name is not a short plain word (letters, digits, _ + -; at most 32 characters)"
+        else:
+            try:
+                positions[row] = [float(v) for v in words[1:]]
+            except ValueError:
+                problem = "x, y, z are not all numbers"
+            if problem is None and not np.all(np.isfinite(positions[row])):
+                problem = "a coordinate is NaN or infinite"
+        if problem:
+            raise SystemFileError(f"{key}: {path} line {row + 3}: {problem}")
+        types.append(words[0])
+    return types, positions
 
 
 def _start_set(data: dict, n: int) -> np.ndarray | None:
@@ -411,10 +726,7 @@ def _start_set(data: dict, n: int) -> np.ndarray | None:
                 "e.g. starts = [[[x, y, z], ...], [[x, y, z], ...]]")
     if not isinstance(value, list) or not value:
         _fail("particles.starts", expected, value)
-    try:
-        arr = np.asarray(value, dtype=np.float64)
-    except (TypeError, ValueError):
-        _fail("particles.starts", expected, value)
+    arr = _numeric_array(value, "particles.starts", expected)
     if arr.ndim != 3 or arr.shape[1:] != (n, 3):
         _fail("particles.starts", expected + f"; got an array of shape {arr.shape}", value)
     if not np.all(np.isfinite(arr)):
@@ -422,7 +734,7 @@ def _start_set(data: dict, n: int) -> np.ndarray | None:
     return arr
 
 
-def _particles(data: dict, folder: pathlib.Path) -> tuple[list[str], np.ndarray]:
+def _particles(data: dict, folder: pathlib.Path, allow_outside_files: bool) -> tuple[list[str], np.ndarray]:
     table = data["particles"]
     if not isinstance(table, dict):
         _fail("particles", "a table with 'file' (XYZ) or 'types' and 'positions'", table)
@@ -432,17 +744,17 @@ def _particles(data: dict, folder: pathlib.Path) -> tuple[list[str], np.ndarray]
             _fail("particles", "either 'file' or inline 'types' and 'positions', not both", sorted(table))
         if not isinstance(table["file"], str):
             _fail("particles.file", "a file name (string)", table["file"])
-        return read_xyz(folder / table["file"])
+        target = resolve_inside(folder, table["file"], allow_outside=allow_outside_files, error=SystemFileError,
+                                what="particles.file")
+        return read_xyz(target)
     for key in ("types", "positions"):
         if key not in table:
             _fail(f"particles.{key}", "a list (this key is required without 'file')", None)
     types = table["types"]
-    if not isinstance(types, list) or not all(isinstance(t, str) for t in types) or not types:
-        _fail("particles.types", "a list of type names (strings)", types)
-    try:
-        positions = np.asarray(table["positions"], dtype=np.float64)
-    except (TypeError, ValueError):
-        _fail("particles.positions", "a list of [x, y, z] rows", table["positions"])
+    if not isinstance(types, list) or not types or not all(isinstance(t, str) and TYPE_NAME.fullmatch(t)
+                                                           for t in types):
+        _fail("particles.types", "a list of type names (short plain words: letters, digits, _ + -)", types)
+    positions = _numeric_array(table["positions"], "particles.positions", "a list of [x, y, z] rows")
     if positions.shape != (len(types), 3) or not np.all(np.isfinite(positions)):
         _fail("particles.positions", f"{len(types)} rows of [x, y, z] (one per entry of particles.types)",
               table["positions"])
@@ -526,10 +838,10 @@ def _restraints_builder(n: int, positions: np.ndarray):
             _check_keys(spec, {"form", "atoms", "reference", "force_constant", "radius", "name", "state"}, where)
             atoms = _integer_rows(spec.get("atoms"), f"{where}.atoms", 1, n)[:, 0]
             if "reference" in spec:
-                try:
-                    reference = np.asarray(spec["reference"], dtype=np.float64).reshape(len(atoms), 3)
-                except (TypeError, ValueError):
+                reference = _numeric_array(spec["reference"], f"{where}.reference", f"{len(atoms)} rows of [x, y, z]")
+                if reference.size != 3 * len(atoms):
                     _fail(f"{where}.reference", f"{len(atoms)} rows of [x, y, z]", spec["reference"])
+                reference = reference.reshape(len(atoms), 3)
             else:
                 reference = positions[atoms]
             k = _per_row(spec, "force_constant", where, len(atoms), positive=True)
@@ -613,7 +925,7 @@ def _nonbonded(data: dict, types: list[str], n: int, unit_system: str, box, bond
             _fail(f"{where}.reaction_field_dielectric", "a cutoff as well (a reaction field acts beyond the cutoff)", rf)
     dielectric = _number(table, "dielectric", where, default=1.0, positive=True)
     separation = table.get("exclude_bonded", 3)
-    if separation not in (0, 1, 2, 3) or isinstance(separation, bool):
+    if not isinstance(separation, int) or isinstance(separation, bool) or separation not in (0, 1, 2, 3):
         _fail(f"{where}.exclude_bonded", "0, 1, 2 or 3 (exclude pairs up to this many bonds apart)", separation)
     excluded = [np.zeros((0, 2), np.int32)]
     pairs_14 = np.zeros((0, 2), np.int32)
@@ -652,7 +964,7 @@ def _nonbonded(data: dict, types: list[str], n: int, unit_system: str, box, bond
     return term, extra, info
 
 
-def _parse_particle_system(data: dict, source: str) -> System:
+def _parse_particle_system(data: dict, source: str, allow_outside_files: bool = False) -> System:
     from .alchemy import STAGE_SHAPES, ParameterInterpolationPath, SoftCoreDecouplingPath
     from .energy import assemble
     from .units import unit_system as get_unit_system
@@ -661,7 +973,7 @@ def _parse_particle_system(data: dict, source: str) -> System:
     if "units" not in data:
         _fail("units", f"one of {list(PARTICLE_UNIT_SYSTEMS)} (required for particle systems)", None)
     unit_system = data["units"]
-    if unit_system not in PARTICLE_UNIT_SYSTEMS:
+    if not isinstance(unit_system, str) or unit_system not in PARTICLE_UNIT_SYSTEMS:
         _fail("units", f"one of {list(PARTICLE_UNIT_SYSTEMS)} for a particle system (energies kJ/mol, lengths nm, "
               "temperature K; or Lennard-Jones reduced units)", unit_system)
     if unit_system == "reduced":
@@ -674,8 +986,8 @@ def _parse_particle_system(data: dict, source: str) -> System:
             _fail("kT", "no kT with units = 'kJ/mol-nm-K': give temperature in kelvin", data["kT"])
         kT = float(get_unit_system(unit_system).kT(_number(data, "temperature", "top level", positive=True)))
         energy_unit = "kJ/mol"
-    folder = pathlib.Path(source).parent if source != "<dict>" else pathlib.Path(".")
-    types, positions = _particles(data, folder)
+    folder = _data_folder(source)
+    types, positions = _particles(data, folder, allow_outside_files)
     n = len(types)
     starts = _start_set(data, n)
 
@@ -701,9 +1013,9 @@ def _parse_particle_system(data: dict, source: str) -> System:
     for i, spec in enumerate(_group_list(data.get("restraints", []), "restraints")):
         groups.append(_Group("restraints", spec, f"restraints[{i}]", _restraints_builder(n, positions)))
     names = [g.name for g in groups]
-    duplicate = sorted({x for x in names if names.count(x) > 1})
-    if duplicate:
-        _fail("name", "distinct group names", duplicate)
+    clashes = [g.where for g in groups if names.count(g.name) > 1]
+    if clashes:
+        raise SystemFileError(f"{clashes[0]}.name: expected distinct group names; {', '.join(clashes)} share a name")
     for g in groups:  # the terms carry the group name (assemble needs distinct names)
         g.term_a = g.build({**g.spec, "name": g.name}, g.where)
     bonds = np.concatenate([np.asarray(g.term_a.bonds) for g in groups if g.kind == "bonds"] or [np.zeros((0, 2), np.int32)])
@@ -723,7 +1035,7 @@ def _parse_particle_system(data: dict, source: str) -> System:
     for i, spec in enumerate(_group_list(change.get("parameters", []), "change.parameters")):
         where = f"change.parameters[{i}]"
         target = spec.get("group")
-        if target not in by_name:
+        if not isinstance(target, str) or target not in by_name:
             _fail(f"{where}.group", f"the name of a bonded or restraint group, one of {sorted(by_name)}", target)
         group = by_name[target]
         if group.state != "both":
@@ -779,14 +1091,15 @@ def _parse_particle_system(data: dict, source: str) -> System:
         path = ParameterInterpolationPath(
             shared + ([nonbonded] if nonbonded is not None else []), [g.term_a for g in changed],
             [g.term_b for g in changed], only_a, only_b, box=model.box, kT=kT)
-    reference, settings = _reference_and_settings(data)
+    reference, settings = _reference_and_settings(data, folder, allow_outside_files)
+    name, description = _name_and_description(data, source)
     particles = {"count": n, "types": sorted(set(types)), "box": None if box is None else box.tolist(),
                  "unit_system": unit_system, "decoupled": [] if decouple is None else decouple.tolist(),
                  "changed": [g.name for g in changed], "released": [t.name for t in only_a],
                  "added": [t.name for t in only_b], **info}
     return System(
-        name=str(data.get("name", pathlib.Path(source).stem)), description=str(data.get("description", "")),
-        energy_a=path.end_function("a"), energy_b=path.end_function("b"), start_a=positions, start_b=positions.copy(),
+        name=name, description=description, energy_a=path.end_function("a"), energy_b=path.end_function("b"),
+        start_a=positions, start_b=positions.copy(),
         kT=kT, units=energy_unit, reference=reference, settings=settings, source=source, path=path,
         unit_system=unit_system, particles=particles, starts=starts,
     )

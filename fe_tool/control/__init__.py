@@ -7,7 +7,8 @@ the dissipation.  Public entry points:
 
 * :func:`prepare_control` — train (``"learned"``), decide (``"auto"``) or reuse a
   control and a λ schedule within an evaluation budget → :class:`ControlOutcome`;
-* :func:`save_control` / :func:`load_control` — files with a JSON header, no pickle;
+* :func:`save_control` / :func:`load_control` — files with a JSON header, no pickle, validated on
+  load (:class:`ControlFileError`); :func:`check_control_fits` checks only the header against a system;
 * :class:`Control`, :class:`MLPControl`, :func:`register_control` — the networks;
 * :class:`Protocol`, :class:`ProtocolDrift`, :func:`bind_control` — learnable schedules
   and the drift of a control on a protocol;
@@ -23,14 +24,16 @@ from .objectives import (OBJECTIVES, Controller, TrainData, TrainSetup, jeffreys
                          record_paths, score_path)
 from .prepare import ControlOutcome, prepare_control
 from .protocol import Protocol, ProtocolDrift, bind_control, level_rates, resample_schedule, resample_step_sizes
-from .storage import LoadedControl, load_control, save_control, system_fingerprint
+from .storage import (ControlFileError, LoadedControl, check_control_fits, load_control, read_control_header,
+                      save_control, system_fingerprint)
 from .training import TrainingReport, evaluate, make_optimiser, run_training, train_step, work_summary
 
 __all__ = [
-    "CONTROL_KINDS", "Control", "ControlOutcome", "ControlScales", "Controller", "LoadedControl", "MLPControl",
-    "OBJECTIVES", "PairForceControl", "Protocol", "ProtocolDrift", "TrainData", "TrainSetup", "TrainingReport",
-    "bind_control", "build_control", "evaluate", "jeffreys_loss", "lambda_embedding", "level_rates", "load_control",
-    "log_variance_loss", "make_optimiser", "pair_force_settings", "path_kl_loss", "prepare_control", "record_paths",
-    "register_control", "resample_schedule", "resample_step_sizes", "run_training", "save_control", "score_path",
-    "system_fingerprint", "train_step", "work_summary",
+    "CONTROL_KINDS", "Control", "ControlFileError", "ControlOutcome", "ControlScales", "Controller", "LoadedControl",
+    "MLPControl", "OBJECTIVES", "PairForceControl", "Protocol", "ProtocolDrift", "TrainData", "TrainSetup",
+    "TrainingReport", "bind_control", "build_control", "check_control_fits", "evaluate", "jeffreys_loss",
+    "lambda_embedding", "level_rates", "load_control", "log_variance_loss", "make_optimiser", "pair_force_settings",
+    "path_kl_loss", "prepare_control", "read_control_header", "record_paths", "register_control", "resample_schedule",
+    "resample_step_sizes", "run_training", "save_control", "score_path", "system_fingerprint", "train_step",
+    "work_summary",
 ]
