@@ -77,7 +77,6 @@ import re
 import signal
 import stat
 import sys
-import tempfile
 import textwrap
 import threading
 import time
@@ -527,6 +526,7 @@ def _call_factory(task: PairTask) -> tuple[tuple, dict[str, Any]]:
 def _compute(task: PairTask):
     """The pair's Result.  Refused input raises ``_PairFailure("bad input", ...)``; any other
     exception is an internal error."""
+    from .options import InputError
     from .systemfile import load_system
     from .workflow import estimate
 
@@ -547,7 +547,7 @@ def _compute(task: PairTask):
         run = functools.partial(estimate, energy_a, energy_b, start_a, start_b, kT=kT, seed=seed, **options)
     try:
         return run()
-    except ValueError as err:   # fe_tool refuses inputs (energies, starts, options) with ValueError
+    except InputError as err:   # fe_tool refuses inputs (energies, starts, options) before computing
         raise _PairFailure("bad input", _describe(err)) from None
 
 
@@ -591,19 +591,9 @@ def _safe(name: str) -> str:
 # ------------------------------------------------------------------ the table on disk
 
 def _atomic_write(path: pathlib.Path, text: str) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "w", newline="") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.chmod(tmp, 0o644)   # mkstemp makes 0600; tables are meant to be shared
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    from .atomic import write_text_atomically
+
+    write_text_atomically(path, text)
 
 
 def _jsonable_row(row: dict) -> dict:

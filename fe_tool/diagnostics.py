@@ -26,15 +26,40 @@ def weight_effective_fraction(works: np.ndarray) -> float:
     return float(np.exp(2 * logsumexp(-w) - logsumexp(-2 * w)) / w.size)
 
 
+OVERLAP_FLAG = 0.01   # below this forward/reverse overlap no estimate from these works is trusted
+OVERLAP_CAUTION = 0.05
+LARGE_WORK = 1e6      # kT; works above this are reported (never dropped)
+
+
 def check_divergence(work_forward: np.ndarray, work_reverse: np.ndarray) -> tuple[list[str], bool]:
+    """Diverged trajectories: work NaN (the integration blew up) or −∞. They are left out and flagged."""
     msgs = []
     for label, w in (("forward", work_forward), ("reverse", work_reverse)):
-        bad = int(np.sum(~np.isfinite(w)))
+        w = np.asarray(w, dtype=np.float64)
+        bad = int(np.sum(np.isnan(w) | (w == -np.inf)))
         if bad:
-            msgs.append(f"{bad} of {w.size} {label} trajectories diverged (non-finite work); they are excluded "
+            msgs.append(f"{bad} of {w.size} {label} trajectories diverged (work NaN or −∞); they are excluded "
                         "from the estimators, so the estimate is biased towards the surviving paths. "
                         "Use smaller steps (step_scale) or more switching steps.")
     return msgs, bool(msgs)
+
+
+def describe_large_works(work_forward: np.ndarray, work_reverse: np.ndarray) -> list[str]:
+    """Say how many very large (or infinite) positive works were kept, and why that is right."""
+    msgs = []
+    for label, w in (("forward", work_forward), ("reverse", work_reverse)):
+        w = np.asarray(w, dtype=np.float64)
+        large = int(np.sum(w > LARGE_WORK))
+        if large:
+            msgs.append(f"{large} of {w.size} {label} works exceed {LARGE_WORK:.0e} kT (e.g. a particle switched on "
+                        "inside a neighbour); they are legitimate samples with (nearly) zero weight and stay in every "
+                        "estimator and in the counts (information, not a problem).")
+        low = int(np.sum(np.isfinite(w) & (w < -LARGE_WORK)))
+        if low:
+            msgs.append(f"{low} of {w.size} {label} works are below −{LARGE_WORK:.0e} kT: such works dominate any "
+                        "exponential average; check the energy for a collapse (e.g. opposite charges without a "
+                        "repulsive core).")
+    return msgs
 
 
 def check_weights(work_forward: np.ndarray, work_reverse: np.ndarray) -> tuple[list[str], dict]:
@@ -55,42 +80,66 @@ def check_weights(work_forward: np.ndarray, work_reverse: np.ndarray) -> tuple[l
 def check_overlap(overlap: float) -> tuple[list[str], bool]:
     if not math.isfinite(overlap):
         return ["the overlap of forward and reverse work distributions could not be computed."], True
-    if overlap < 0.01:
-        return [f"forward and reverse work distributions barely overlap (overlap {overlap:.3g}); BAR's "
-                "error bar is unreliable. Use more switching steps or a larger budget."], True
-    if overlap < 0.05:
+    if overlap < OVERLAP_FLAG:
+        return [f"forward and reverse work distributions barely overlap (overlap {overlap:.3g} < {OVERLAP_FLAG}): "
+                "neither BAR's nor a one-sided error bar can be trusted. Use more switching steps or a larger "
+                "budget."], True
+    if overlap < OVERLAP_CAUTION:
         return [f"forward and reverse work distributions overlap poorly (overlap {overlap:.3g}); treat the "
                 "error bar with caution."], False
     return [], False
 
 
+def is_reliable(estimate: Estimate) -> bool:
+    """An estimate its own diagnostics trust: finite, and (for exponential averages) a light weight tail."""
+    return estimate.is_finite and bool(estimate.details.get("reliable", True))
+
+
+def check_headline(estimate: Estimate, headline: str) -> tuple[list[str], bool]:
+    """A headline estimate its own diagnostics call unreliable flags the result."""
+    if is_reliable(estimate):
+        return [], False
+    reason = estimate.details.get("unreliable_reason", "its error bar is not finite")
+    return [f"the headline {headline} estimate is unreliable: {reason}."], True
+
+
 def check_agreement(estimates: dict[str, Estimate], headline: str, threshold: float = 3.0) -> tuple[list[str], bool]:
-    """Warn when an estimator disagrees with the headline by more than ``threshold`` combined errors."""
+    """Compare every estimator with the headline.
+
+    A disagreement flags the result only when the disagreeing estimator is itself judged
+    reliable by its own diagnostics (:func:`is_reliable`; the Crooks Gaussian fit never, as it
+    assumes Gaussian works); otherwise it is shown as information. A one-sided exponential
+    average is known to be biased in its own direction when its weights have a heavy tail, so
+    its disagreement then says nothing about the headline.
+    """
     msgs, serious = [], False
     ref = estimates[headline]
     for name, est in estimates.items():
-        if name == headline or not est.is_finite:
+        if name == headline or not (math.isfinite(est.delta_f) and math.isfinite(ref.delta_f)):
             continue
-        gap = abs(est.delta_f - ref.delta_f)
-        scale = math.hypot(est.stderr, ref.stderr)
-        if scale > 0 and gap > threshold * scale and name == "crooks_gaussian":
+        scale = math.hypot(est.stderr, ref.stderr) if est.is_finite else math.nan
+        if not (scale > 0) or abs(est.delta_f - ref.delta_f) <= threshold * scale:
+            if not is_reliable(est) and name.startswith("jarzynski"):
+                msgs.append(f"{name} ({est.delta_f:.3f} kT) is shown for information only: "
+                            f"{est.details.get('unreliable_reason', 'its error bar is not finite')}.")
+            continue
+        gap = abs(est.delta_f - ref.delta_f) / scale
+        if name == "crooks_gaussian":
             msgs.append(f"the Crooks Gaussian estimate ({est.delta_f:.3f} kT) differs from {headline} "
-                        f"({ref.delta_f:.3f} kT) by {gap / scale:.1f} combined errors: the work distributions are "
+                        f"({ref.delta_f:.3f} kT) by {gap:.1f} combined errors: the work distributions are "
                         "not Gaussian, which that estimate assumes (BAR and Jarzynski do not).")
-        elif scale > 0 and gap > threshold * scale:
+        elif is_reliable(est):
             msgs.append(f"{name} ({est.delta_f:.3f} kT) disagrees with {headline} ({ref.delta_f:.3f} kT) by "
-                        f"{gap / scale:.1f} combined standard errors: the switching is far from equilibrium "
+                        f"{gap:.1f} combined standard errors: the switching is far from equilibrium "
                         "or an end state is poorly sampled.")
-            serious = serious or name.startswith("jarzynski")
-    if "jarzynski_forward" in estimates and "jarzynski_reverse" in estimates:
-        f, r = estimates["jarzynski_forward"], estimates["jarzynski_reverse"]
-        if f.is_finite and r.is_finite:
-            gap = abs(f.delta_f - r.delta_f)
-            scale = math.hypot(f.stderr, r.stderr)
-            if scale > 0 and gap > threshold * scale:
-                msgs.append(f"forward and reverse Jarzynski estimates disagree ({f.delta_f:.3f} vs "
-                            f"{r.delta_f:.3f} kT, {gap / scale:.1f} combined errors).")
-                serious = True
+            serious = True
+    f, r = estimates.get("jarzynski_forward"), estimates.get("jarzynski_reverse")
+    if f is not None and r is not None and is_reliable(f) and is_reliable(r):
+        scale = math.hypot(f.stderr, r.stderr)
+        if scale > 0 and abs(f.delta_f - r.delta_f) > threshold * scale:
+            msgs.append(f"forward and reverse Jarzynski estimates disagree ({f.delta_f:.3f} vs "
+                        f"{r.delta_f:.3f} kT, {abs(f.delta_f - r.delta_f) / scale:.1f} combined errors).")
+            serious = True
     return msgs, serious
 
 

@@ -86,6 +86,18 @@ class Path(eqx.Module):
         return digest.hexdigest()[:16]
 
 
+def mix_ends(u_a: Array, u_b: Array, lam: Array) -> Array:
+    """(1 − λ)·u_A + λ·u_B, exactly u_A at λ = 0 and u_B at λ = 1.
+
+    An end state may forbid a region with u = +∞ (a hard wall). The plain formula would give
+    0·∞ = NaN at the other end, turning the wall of B into a wall of A as well; selecting the end
+    energies at λ = 0 and 1 keeps each end exactly what the user wrote, and every state in between
+    forbids what either end forbids.
+    """
+    inner = (1.0 - lam) * u_a + lam * u_b
+    return jnp.where(lam == 0.0, u_a, jnp.where(lam == 1.0, u_b, inner))
+
+
 class LinearPath(Path):
     """u_λ = (1 − λ) u_A + λ u_B with u = U/kT (the tempered interpolation).
 
@@ -108,11 +120,11 @@ class LinearPath(Path):
 
     def energy(self, x, lam):
         u_a, u_b = self.end_energies(x)
-        return (1.0 - lam) * u_a + lam * u_b
+        return mix_ends(u_a, u_b, lam)
 
     def energies_at(self, x, lams):
         u_a, u_b = self.end_energies(x)
-        return (1.0 - lams) * u_a + lams * u_b
+        return mix_ends(u_a, u_b, lams)
 
     def lambda_derivative(self, x, lam):
         u_a, u_b = self.end_energies(x)

@@ -25,8 +25,9 @@ import math
 import numpy as np
 from scipy.optimize import nnls
 
-PILOT_SCALES = (1.0, 0.4, 0.16, 0.064)
-MIN_TRAJECTORIES = 64
+from .budget import MIN_TRAJECTORIES, PILOT_SCALES, affordable_trajectories  # noqa: F401  (PILOT_SCALES re-exported)
+
+PREFERRED_TRAJECTORIES = 64  # plans with fewer are taken only when no plan affords this many
 MAX_STEPS = 20_000
 
 
@@ -85,8 +86,14 @@ def bar_variance_model(hysteresis: float, trajectories: int) -> float:
 
 def plan_protocol(points: list[PilotPoint], *, remaining: int, per_point: int, available: int,
                   steps: int | None = None, trajectories: int | None = None,
-                  scale: float | None = None) -> Plan:
-    """Choose K, s and T for the remaining budget (user-fixed values are kept)."""
+                  scale: float | None = None, batch: int = 128) -> Plan:
+    """Choose K, s and T for the remaining budget (user-fixed values are kept).
+
+    T is what ``remaining`` pays for in both directions, batch padding included (see
+    :func:`fe_tool.budget.affordable_trajectories`). Plans with at least
+    :data:`PREFERRED_TRAJECTORIES` per direction are preferred; when none exists, plans with at
+    least :data:`fe_tool.budget.MIN_TRAJECTORIES` are considered.
+    """
     model = fit_dissipation(points)
     stable = [p for p in points if p.diverged == 0]
     largest = max((p.scale for p in stable), default=min(p.scale for p in points) * 0.5) if points else 1.0
@@ -94,7 +101,7 @@ def plan_protocol(points: list[PilotPoint], *, remaining: int, per_point: int, a
     def traj_for(k):
         if trajectories is not None:
             return trajectories
-        return int(min(available, remaining // (2 * per_point * (k + 1))))
+        return affordable_trajectories(remaining, k, per_point, batch, available)
 
     if model is None:
         # fall back: the pilot point with least hysteresis, steps for a ~1 kT spread
@@ -107,6 +114,8 @@ def plan_protocol(points: list[PilotPoint], *, remaining: int, per_point: int, a
             t = traj_for(steps)
             if t < MIN_TRAJECTORIES and trajectories is None:
                 steps = max(1, remaining // (2 * per_point * MIN_TRAJECTORIES) - 1)
+                while steps > 1 and traj_for(steps) < MIN_TRAJECTORIES:
+                    steps -= 1
         t = traj_for(steps)
         return Plan(int(steps), float(s), int(t), float("nan"), float("nan"),
                     "pilot too noisy to fit a dissipation model; used the best pilot step size")
@@ -114,19 +123,25 @@ def plan_protocol(points: list[PilotPoint], *, remaining: int, per_point: int, a
     candidates = [steps] if steps is not None else sorted(
         {int(k) for k in np.unique(np.geomspace(8, MAX_STEPS, 60).astype(int))})
     best_plan = None
-    for k in candidates:
-        t = traj_for(k)
-        if t < (2 if trajectories is not None or steps is not None else MIN_TRAJECTORIES):
-            continue
-        s = scale if scale is not None else best_scale(model, k, largest=largest)
-        h = predicted_hysteresis(model, k, s)
-        var = bar_variance_model(h, t)
-        if best_plan is None or var < best_plan.predicted_stderr**2:
-            best_plan = Plan(int(k), float(s), int(t), h, math.sqrt(var),
-                             f"dissipation model h ≈ {model[0]:.3g}/(K·s) + {model[1]:.3g}·K·s³ fitted to "
-                             f"{len(points)} pilot runs; predicted hysteresis {h:.2f} kT")
+    fixed = trajectories is not None or steps is not None
+    for floor in ((2,) if fixed else (PREFERRED_TRAJECTORIES, MIN_TRAJECTORIES)):
+        for k in candidates:
+            t = traj_for(k)
+            if t < floor:
+                continue
+            s = scale if scale is not None else best_scale(model, k, largest=largest)
+            h = predicted_hysteresis(model, k, s)
+            var = bar_variance_model(h, t)
+            if best_plan is None or var < best_plan.predicted_stderr**2:
+                best_plan = Plan(int(k), float(s), int(t), h, math.sqrt(var),
+                                 f"dissipation model h ≈ {model[0]:.3g}/(K·s) + {model[1]:.3g}·K·s³ fitted to "
+                                 f"{len(points)} pilot runs; predicted hysteresis {h:.2f} kT")
+        if best_plan is not None:
+            break
     if best_plan is None:
-        k = steps if steps is not None else 16
+        k = steps if steps is not None else 8
+        while steps is None and k > 1 and traj_for(k) < MIN_TRAJECTORIES:
+            k -= 1
         t = max(2, traj_for(k))
         s = scale if scale is not None else best_scale(model, k, largest=largest)
         best_plan = Plan(int(k), float(s), int(t), predicted_hysteresis(model, k, s), float("nan"),

@@ -216,8 +216,8 @@ def plot_batch_summary(rows_or_results_dir, target=None, *, reference: dict[str,
         rows = read_table(rows_or_results_dir)
     else:
         rows = list(rows_or_results_dir)
-    ok = [r for r in rows if r.get("status") == "ok"]
-    failed = [r for r in rows if r.get("status") != "ok"]
+    ok = [r for r in rows if r.get("status") in ("ok", "flagged")]   # finished results
+    failed = [r for r in rows if r.get("status") not in ("ok", "flagged")]
     fig, ax = _target(target)
     if fig is not None:
         fig.set_size_inches(max(6.4, 0.45 * len(rows) + 2), 4.6)

@@ -100,8 +100,10 @@ class Result:
         return to_jsonable(out)
 
     def to_json(self, path) -> None:
-        with open(path, "w") as fh:
-            json.dump(self.to_dict(), fh, indent=1)
+        """Write :meth:`to_dict` as JSON, atomically (a reader never sees half a file)."""
+        from .atomic import write_text_atomically
+
+        write_text_atomically(path, json.dumps(self.to_dict(), indent=1))
 
     # ------------------------------------------------------------------ text
     def summary(self) -> str:

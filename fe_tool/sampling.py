@@ -64,6 +64,8 @@ class ChainState(NamedTuple):
 class StepInfo(NamedTuple):
     acceptance: Array  # Metropolis acceptance probability of this step
     energy: Array
+    proposal_nan: Array  # the proposal's energy was NaN (an error in the energy function)
+    proposal_forbidden: Array  # the proposal's energy was +inf (a forbidden region; rejected)
 
 
 class Target(eqx.Module):
@@ -136,9 +138,22 @@ def mala_kernel(target: Target):
         acceptance = jnp.exp(jnp.minimum(log_ratio, 0.0))
         accept = jax.random.uniform(key_accept, (), x.dtype) < acceptance
         new = jax.tree_util.tree_map(lambda a, b: jnp.where(accept, a, b), ChainState(y, u_y, g_y), state)
-        return new, StepInfo(acceptance, new.energy)
+        return new, StepInfo(acceptance, new.energy, jnp.isnan(u_y), u_y == jnp.inf)
 
     return kernel
+
+
+class BlockOutput(NamedTuple):
+    """What :func:`run_block` returns (see there)."""
+
+    states: ChainState
+    log_step: Array
+    mean_log_step: Array
+    acceptance: Array
+    energies: Array
+    recorded: Array | None
+    derivatives: Array | None
+    nonfinite: Array  # (NaN proposals, +inf proposals) summed over the block's steps and chains
 
 
 @eqx.filter_jit
@@ -152,7 +167,8 @@ def run_block(target: Target, key, states: ChainState, log_step, preconditioner,
     block, per-chain mean acceptance, the energy trace (steps, chains), positions
     recorded every ``record_every`` steps (or ``None`` when ``record_every`` is 0) and
     ∂u/∂λ (:meth:`Target.lambda_derivative`) recorded every ``observe_every`` steps,
-    shape (steps // observe_every, chains) (or ``None`` when ``observe_every`` is 0).
+    shape (steps // observe_every, chains) (or ``None`` when ``observe_every`` is 0), and the
+    number of proposals whose energy was NaN or +inf (:class:`BlockOutput`).
     ``observe_every`` must be a multiple of ``record_every`` when both are given.
     """
     kernel = jax.vmap(mala_kernel(target), in_axes=(0, 0, None, None))
@@ -171,7 +187,8 @@ def run_block(target: Target, key, states: ChainState, log_step, preconditioner,
         keys = jax.random.split(key_step, chains)
         states, info = kernel(keys, states, jnp.exp(log_step), preconditioner)
         log_step = log_step + adapt_rate * (jnp.mean(info.acceptance) - TARGET_ACCEPTANCE)
-        return (states, log_step), (info.acceptance, info.energy, log_step)
+        odd = jnp.stack([jnp.sum(info.proposal_nan), jnp.sum(info.proposal_forbidden)])
+        return (states, log_step), (info.acceptance, info.energy, log_step, odd)
 
     def record(carry, keys):
         # inner scan between two recordings: only every `every`-th position is kept in memory
@@ -185,13 +202,14 @@ def run_block(target: Target, key, states: ChainState, log_step, preconditioner,
         return carry, (outputs, du)
 
     keys = jax.random.split(key, steps).reshape((steps // group, group // every, every) + key.shape)
-    (states, log_step_end), (((acc, energies, log_steps), recorded), du) = jax.lax.scan(
+    (states, log_step_end), (((acc, energies, log_steps, odd), recorded), du) = jax.lax.scan(
         observe, (states, log_step), keys)
     flat = lambda a: a.reshape((steps,) + a.shape[3:])  # noqa: E731
     acc, energies, log_steps = flat(acc), flat(energies), flat(log_steps)
     if recorded is not None:
         recorded = recorded.reshape((steps // every,) + recorded.shape[2:])
-    return states, log_step_end, jnp.mean(log_steps), jnp.mean(acc, axis=0), energies, recorded, du
+    odd = jnp.sum(odd.reshape(steps, 2), axis=0)
+    return BlockOutput(states, log_step_end, jnp.mean(log_steps), jnp.mean(acc, axis=0), energies, recorded, du, odd)
 
 
 @dataclasses.dataclass
@@ -215,6 +233,10 @@ class StateSamples:
             ``"energy"``, ``"du_dlambda"`` (∂u/∂λ at the target's λ; absent when it is constant
             there) and ``"coordinates"`` (slowest coordinate, vector systems).
         derivative_evaluations: the part of ``evaluations`` spent on ∂u/∂λ.
+        nan_proposals: proposals whose energy was NaN (rejected; an error in the energy function,
+            which flags the result).
+        forbidden_proposals: proposals whose energy was +∞ (rejected; a forbidden region such as
+            a hard wall, which is legitimate).
     """
 
     samples: np.ndarray
@@ -232,6 +254,8 @@ class StateSamples:
     warnings: list[str]
     autocorrelation_times: dict[str, float] = dataclasses.field(default_factory=dict)
     derivative_evaluations: int = 0
+    nan_proposals: int = 0
+    forbidden_proposals: int = 0
 
     def diagnostics(self) -> dict:
         return {
@@ -247,7 +271,22 @@ class StateSamples:
             "autocorrelation_times": dict(self.autocorrelation_times),
             "evaluations": self.evaluations,
             "derivative_evaluations": self.derivative_evaluations,
+            "nan_proposals": self.nan_proposals,
+            "forbidden_proposals": self.forbidden_proposals,
         }
+
+
+def nonfinite_warnings(name: str, nan_count: int, forbidden_count: int) -> list[str]:
+    """Plain words about proposals whose energy was NaN (an error) or +∞ (a forbidden region)."""
+    out = []
+    if nan_count:
+        out.append(f"{name}: {nan_count:,} sampler proposals had a NaN energy and were rejected. NaN is not an energy: "
+                   "the energy function fails somewhere the sampler went (return +inf for a region that is "
+                   "forbidden, or fix the formula); the result is not trustworthy.")
+    if forbidden_count:
+        out.append(f"{name}: {forbidden_count:,} sampler proposals had energy +inf (a forbidden region, e.g. a hard "
+                   "wall) and were rejected; this is legitimate and the estimators treat such states as impossible.")
+    return out
 
 
 # ------------------------------------------------------------------ time-series analysis
@@ -261,7 +300,7 @@ def autocorrelation_time(trace: np.ndarray, window_factor: float = 5.0) -> float
     "Monte Carlo methods in statistical mechanics: foundations and new algorithms", in Functional Integration, NATO ASI Series B 361, Plenum [mem]).
     Returns ``len(trace)`` when no window fits (the trace is too short).
     """
-    trace = np.asarray(trace, dtype=np.float64)
+    trace = _ranked_if_infinite(trace)
     if trace.ndim == 1:
         trace = trace[:, None]
     n = trace.shape[0]
@@ -289,7 +328,7 @@ def split_mixing_statistic(trace: np.ndarray) -> float:
     compared with the mean within variance (Gelman & Rubin 1992, Stat. Sci. 7, 457;
     split form: Vehtari et al. 2021, Bayesian Analysis 16, 667).
     """
-    trace = np.asarray(trace, dtype=np.float64)
+    trace = _ranked_if_infinite(trace)
     n = trace.shape[0] // 2
     if n < 2:
         return float("nan")
@@ -304,6 +343,35 @@ def split_mixing_statistic(trace: np.ndarray) -> float:
 
 # ------------------------------------------------------------------ the driver
 
+def _production_plan(samples: int, healthy: int, chains: int, stride: int, per_call: int, remaining: int,
+                     tau: float) -> tuple[int, int, str]:
+    """``(stride, samples per chain, warning)`` for production within ``remaining`` evaluations.
+
+    Every chain (stuck ones too) runs ``stride × per_chain`` steps. When fewer than
+    :data:`MIN_SAMPLES` samples fit at stride ⌈τ⌉ the stride is shortened (and the samples are
+    correlated, which the warning says); when not even one step per chain fits, ``per_chain`` is
+    0 and the chains' current positions are the samples.
+    """
+    wanted = int(math.ceil(samples / healthy))
+    affordable = remaining // (chains * stride * per_call)
+    if affordable >= wanted:
+        return stride, wanted, ""
+    if affordable * healthy >= MIN_SAMPLES:
+        note = ""
+        if affordable * healthy < 2 * MIN_SAMPLES:
+            note = (f"the budget affords only {affordable * healthy} decorrelated samples (autocorrelation time "
+                    f"{tau:.0f} steps); raise the budget for more trajectories.")
+        return stride, int(affordable), note
+    per_chain = max(1, min(wanted, int(math.ceil(MIN_SAMPLES / healthy))))
+    short = int(remaining // (chains * per_chain * per_call))
+    if short < 1:
+        per_chain = int(remaining // (chains * per_call))
+        short = 1
+    return short, per_chain, (f"the budget left {remaining:,} evaluations for production, too few for {MIN_SAMPLES} "
+                              f"samples one autocorrelation time ({tau:.0f} steps) apart; they are {short} steps "
+                              "apart and correlated, so error bars may be too small. Raise the budget.")
+
+
 def _observables(energies: list[np.ndarray], positions: list[np.ndarray] | None,
                  derivatives: list[np.ndarray] | None, record: int, observe: int):
     """``(name, trace[step, chain], spacing in steps)`` of every watched observable."""
@@ -315,6 +383,22 @@ def _observables(energies: list[np.ndarray], positions: list[np.ndarray] | None,
     if derivatives:
         traces.append(("du_dlambda", np.concatenate(derivatives, axis=0), observe))
     return traces
+
+
+def _ranked_if_infinite(trace: np.ndarray) -> np.ndarray:
+    """Ranks of the values when some are infinite (e.g. ∂u/∂λ where the other end forbids a state).
+
+    Rank-normalising keeps the order (so slow switching between finite and infinite values still
+    shows as correlation and as chain disagreement; as in the rank-normalised R̂ of Vehtari et al.
+    2021, Bayesian Analysis 16, 667) and makes the moments finite.
+    """
+    trace = np.asarray(trace, dtype=np.float64)
+    if np.all(np.isfinite(trace)):
+        return trace
+    from scipy.stats import rankdata
+
+    cleaned = np.where(np.isnan(trace), np.inf, trace)
+    return rankdata(cleaned.reshape(-1)).reshape(trace.shape)
 
 
 def _judge(traces) -> tuple[float, float, dict[str, float]]:
@@ -394,13 +478,16 @@ def sample_state(
     def block_cost(observe_every=0):
         return chains * (BLOCK_STEPS * per_call + (BLOCK_STEPS // observe_every * per_derivative if observe_every else 0))
 
+    nonfinite = np.zeros(2, dtype=np.int64)  # proposals with NaN energy, with +inf energy
+
     def block(states, log_step, adapt_rate, record_every, observe_every=0):
-        nonlocal spent, derivative_spent
+        nonlocal spent, derivative_spent, nonfinite
         out = run_block(target, next(keys), states, log_step, preconditioner, adapt_rate, BLOCK_STEPS, record_every,
                         observe_every)
         spent += block_cost(observe_every)
         derivative_spent += block_cost(observe_every) - block_cost(0)
-        return out
+        nonfinite += np.asarray(out.nonfinite, dtype=np.int64)
+        return out[:7]
 
     # ---- warm-up: step size (and preconditioner, in doubling windows)
     warm_blocks = max(1, min_warmup // BLOCK_STEPS)
@@ -483,42 +570,27 @@ def sample_state(
         warnings.append(f"{name}: {int(stuck.sum())} of {chains} sampling chains were stuck (acceptance below "
                         f"{STUCK_ACCEPTANCE:.0%}) and were excluded from the samples (their cost still counts).")
 
-    # ---- production: every chain continues, sampled every ceil(tau) steps
+    # ---- production: every chain continues, sampled every ceil(tau) steps, within the budget
     stride = max(1, int(math.ceil(tau))) if np.isfinite(tau) else 1
-    # as many decorrelated samples as the rest of the budget affords; when not even
-    # MIN_SAMPLES fit at stride ⌈τ⌉, take MIN_SAMPLES at a shorter stride and say so
     remaining = max(evaluation_budget - spent, 0)
-    affordable = remaining // (stride * per_call)
-    if affordable < samples:
-        if affordable >= MIN_SAMPLES:
-            samples = int(affordable)
-            if samples < MIN_SAMPLES * 2:
-                warnings.append(f"{name}: the budget affords only {samples} decorrelated samples "
-                                f"(autocorrelation time {tau:.0f} steps); raise the budget for more trajectories.")
-        else:
-            samples = MIN_SAMPLES
-            stride = max(1, int(remaining // (MIN_SAMPLES * per_call)))
-            warnings.append(f"{name}: the budget left {remaining:,} evaluations for production, too few for "
-                            f"{MIN_SAMPLES} samples one autocorrelation time ({tau:.0f} steps) apart; they are "
-                            f"{stride} steps apart and correlated, so error bars are too small. Raise the budget.")
-    per_chain = int(math.ceil(samples / len(healthy)))
-    record_every = stride
-    collected = []
-    prod_acc = []
-    # run whole blocks with positions recorded every `stride` steps; stride divides the block when small
-    stride_block = stride * max(1, BLOCK_STEPS // stride)
-    while sum(c.shape[0] for c in collected) < per_chain:
-        out = run_block(target, next(keys), states, log_step, preconditioner, 0.0, stride_block, record_every)
-        states, _, _, acc, _, pos, _ = out
-        spent += chains * stride_block * per_call
-        collected.append(np.asarray(pos))
-        prod_acc.append(np.asarray(acc))
-    pos = np.concatenate(collected)[:per_chain]  # (per_chain, chains, ...)
+    stride, per_chain, note = _production_plan(samples, len(healthy), chains, stride, per_call, remaining, tau)
+    if note:
+        warnings.append(f"{name}: {note}")
+    if per_chain > 0:
+        out = run_block(target, next(keys), states, log_step, preconditioner, 0.0, stride * per_chain, stride)
+        states, _, _, acc, _, pos, _ = out[:7]
+        nonfinite += np.asarray(out.nonfinite, dtype=np.int64)
+        spent += chains * stride * per_chain * per_call
+        pos = np.asarray(pos)
+        acceptance = float(np.mean(np.asarray(acc)[healthy]))
+    else:  # nothing left to spend: the chains' current positions are the samples
+        pos = np.asarray(states.position)[None]
+        acceptance = float(np.mean(acc_chain[healthy]))
+        per_chain = 1
     pos = pos[:, healthy]
     # interleave chains so that a prefix of the array draws from every chain
     flat = np.moveaxis(pos, 0, 1).reshape((len(healthy), per_chain) + start.shape)
     flat = np.swapaxes(flat, 0, 1).reshape((-1,) + start.shape)[:samples]
-    acceptance = float(np.mean(np.stack(prod_acc)[:, healthy]))
 
     if not equilibrated:
         warnings.append(
@@ -527,6 +599,7 @@ def sample_state(
             "The end state may be multimodal or slow to mix: raise the budget or give a better start configuration.")
     if acceptance < 0.2:
         warnings.append(f"{name}: low sampler acceptance {acceptance:.2f}; the energy may be very rough.")
+    warnings.extend(nonfinite_warnings(name, int(nonfinite[0]), 0))  # +inf ones: summarised by the route
     ess = float(len(flat) * min(1.0, stride / max(tau, 1.0))) if np.isfinite(tau) else float("nan")
     return StateSamples(
         samples=flat,
@@ -544,4 +617,6 @@ def sample_state(
         warnings=warnings,
         autocorrelation_times={k: float(v) for k, v in taus.items()},
         derivative_evaluations=int(derivative_spent),
+        nan_proposals=int(nonfinite[0]),
+        forbidden_proposals=int(nonfinite[1]),
     )

@@ -18,7 +18,11 @@ P_B = π_K(x_K) Π_k B_k.  Their log-ratio (the discrete Radon–Nikodym derivat
     w = u_K(x_K) − u_0(x_0) − Σ_k ln[ B_k(x_{k+1} → x_k) / F_k(x_k → x_{k+1}) ]
       = Σ_k { u_{k+1}(x_{k+1}) − u_k(x_k) + |x_k − m^B_k|²_{M_k⁻¹}/(4ε_k) − |ξ_k|²/2 },
 
-where m^B_k is the backward kernel's mean.  Hence ⟨e^{−w}⟩_F = Z_K/Z_0 = e^{−Δf}
+where m^B_k is the backward kernel's mean.  The energies of the intermediate levels cancel
+in the sum, so the work is accumulated as u_K(x_K) − u_0(x_0) plus the kernel terms: a
+trajectory that crosses a region some intermediate level forbids (u = +∞, e.g. a hard wall)
+and leaves it again keeps a finite work, and one that ends in a forbidden region gets w = +∞
+(weight zero), never ∞ − ∞.  Hence ⟨e^{−w}⟩_F = Z_K/Z_0 = e^{−Δf}
 (Jarzynski's equality) holds exactly for any K, ε and φ when x_0 ~ π_A exactly.
 The *reverse* process starts from x_K ~ π_B and runs the backward kernels in the
 exactly time-reversed order (B_{K−1}, …, B_0); its work is w_R = −w evaluated on its
@@ -54,7 +58,7 @@ class SwitchState(NamedTuple):
     energy: Array  # u at the current level
     grad: Array  # ∇u at the current level
     drift: Array  # φ at (position, current λ), zero without control
-    work: Array
+    work: Array  # kernel terms so far: Σ [|x_k − m^B_k|²/(4ε) − |ξ_k|²/2] (energies are added at the end)
 
 
 def _zero_drift(x, lam):
@@ -83,8 +87,9 @@ def make_transition(path: Path, control: ControlFunction | None):
         d_z = phi(z, lam_to)
         back_mean = z + step * (-m * g_z - sign * d_z)
         back = jnp.sum((x - back_mean) ** 2 / m) / (4.0 * step)
-        increment = u_z - state.energy + back - jnp.sum(noise**2) / 2.0
-        return SwitchState(z, u_z, g_z, d_z, state.work + increment), increment
+        kernel = back - jnp.sum(noise**2) / 2.0
+        increment = u_z - state.energy + kernel  # this step's share of the work (NaN across a forbidden region)
+        return SwitchState(z, u_z, g_z, d_z, state.work + kernel), increment
 
     return transition
 
@@ -142,13 +147,14 @@ def switch(path: Path, control: ControlFunction | None, key, starts: Array, lams
     first = states
     keys = jax.random.split(key, lams.shape[0] - 1)
     states, (increments, visited) = jax.lax.scan(body, states, (keys, lams[:-1], lams[1:], step_sizes))
+    works = states.energy - first.energy + states.work
     if not record:
-        return states.work, increments.T, states.position
+        return works, increments.T, states.position
     positions, energies, grads = visited
     positions = jnp.concatenate([first.position[None], positions]).swapaxes(0, 1)
     energies = jnp.concatenate([first.energy[None], energies]).T
     grads = jnp.concatenate([first.grad[None], grads]).swapaxes(0, 1)
-    return states.work, increments.T, positions, energies, grads
+    return works, increments.T, positions, energies, grads
 
 
 @eqx.filter_jit
@@ -162,19 +168,30 @@ def switching_evaluations(path: Path, trajectories: int, steps: int) -> int:
     return int(trajectories) * (int(steps) + 1) * path.evaluations_per_point(1)
 
 
+def switching_evaluations_padded(path: Path, trajectories: int, steps: int, batch: int) -> int:
+    """Evaluations :func:`run_in_batches` really spends (batch padding included), one direction."""
+    from .budget import padded_trajectories
+
+    return switching_evaluations(path, padded_trajectories(trajectories, batch)[1], steps)
+
+
 def run_in_batches(path, control, key, starts, lams, step_sizes, precision_a, precision_b, direction,
                    batch: int = 256):
     """:func:`switch_jit` over ``starts`` in fixed-size batches (bounded memory, one compilation).
 
-    The last batch is padded with copies of the first start and the padding dropped.
+    Batches are as equal as possible (:func:`fe_tool.budget.padded_trajectories`); the last one
+    is padded with copies of its first start and the padding dropped, so fewer trajectories than
+    batches are wasted (:func:`switching_evaluations_padded` counts them).
     Returns numpy float64 works (T,), increments (T, K) and final positions.
     """
+    from .budget import padded_trajectories
+
     if direction not in ("forward", "reverse"):
         raise ValueError(f"direction must be 'forward' or 'reverse', got {direction!r}")
     sign = jnp.asarray(1.0 if direction == "forward" else -1.0)
     starts = jnp.asarray(starts)
     total = starts.shape[0]
-    batch = int(min(batch, total))
+    batch, _ = padded_trajectories(total, batch)
     works, incs, finals = [], [], []
     keys = jax.random.split(key, -(-total // batch))
     for i, k in enumerate(keys):

@@ -43,11 +43,13 @@ from .sampling import (
     autocorrelation_time,
     init_state,
     mala_kernel,
+    nonfinite_warnings,
     run_block,
     sample_state,
     window_target,
 )
 from .inputs import validate_inputs
+from .options import InputError
 
 DEFAULT_WINDOWS = 10             # with a budget: at most this many (see _default_window_count)
 OVERLAP_WARNING = 0.03           # smallest acceptable MBAR overlap between neighbouring windows
@@ -150,6 +152,25 @@ def _stride(s: StateSamples) -> int:
     return max(1, int(math.ceil(tau))) if math.isfinite(tau) else 1
 
 
+def _production_cost(s: StateSamples, samples: int, per_call: int) -> int:
+    """Evaluations :func:`_produce` spends for ``samples`` samples of window ``s``."""
+    healthy = s.chains - s.stuck_chains
+    per_chain = int(math.ceil(samples / healthy))
+    return (healthy + healthy * _stride(s) * per_chain) * per_call
+
+
+def _affordable_samples(sampled: list[StateSamples], left: int, cap: int, per_call: int, analysis: int) -> int:
+    """Most samples per window (≤ ``cap``) whose production and analysis in every window fit ``left``."""
+    def cost(n):
+        return sum(_production_cost(s, n, per_call) for s in sampled) + n * len(sampled) * analysis
+
+    low, high = 0, int(cap)
+    while low < high:   # the cost rises with n: bisect for the largest affordable n
+        middle = (low + high + 1) // 2
+        low, high = (middle, high) if cost(middle) <= left else (low, middle - 1)
+    return low
+
+
 def _produce(key, target, s: StateSamples, samples: int) -> int:
     """Continue the healthy chains of an equilibrated window and keep one sample every ⌈τ⌉ steps.
 
@@ -162,9 +183,15 @@ def _produce(key, target, s: StateSamples, samples: int) -> int:
     states = jax.vmap(init_state, in_axes=(None, 0))(target, starts)
     stride = _stride(s)
     per_chain = int(math.ceil(samples / healthy))
-    _, _, _, acceptance, _, positions, _ = run_block(
+    out = run_block(
         target, key, states, jnp.log(jnp.asarray(s.step_size, starts.dtype)), jnp.asarray(s.preconditioner),
         0.0, stride * per_chain, stride)
+    acceptance, positions = out.acceptance, out.recorded
+    s.nan_proposals += int(out.nonfinite[0])
+    s.forbidden_proposals += int(out.nonfinite[1])
+    if int(out.nonfinite[0]):
+        s.warnings.extend(nonfinite_warnings(f"window λ = {float(target.lam):.4g} (production)",
+                                             int(out.nonfinite[0]), 0))
     # positions are (per_chain, chains, ...): flattening interleaves the chains, so any prefix draws from all
     s.samples = np.asarray(positions).reshape((-1,) + starts.shape[1:])[:samples]
     s.acceptance = float(np.mean(np.asarray(acceptance)))
@@ -246,6 +273,29 @@ _exchange_jit = eqx.filter_jit(_exchange_run)
 
 
 # --------------------------------------------------------------------------- the route
+
+def _integration_estimates(lams, means, errors, gauss_legendre: bool, warnings: list[str]) -> dict[str, Estimate]:
+    """TI by the trapezoid rule (and Gauss–Legendre on GL ladders); not applicable where ⟨∂u/∂λ⟩ is infinite.
+
+    A region that one end forbids (u = +∞) and the other allows makes ∂u/∂λ = u_B − u_A infinite
+    on samples there: the integrand of TI does not exist, while MBAR and BAR (which only need
+    energy differences, with +∞ as zero weight) remain exact.
+    """
+    out = {}
+    rules = [("ti_trapezoid", "trapezoid", slice(None))] + \
+        ([("ti_gauss_legendre", "gauss-legendre", slice(1, -1))] if gauss_legendre else [])
+    applicable = bool(np.all(np.isfinite(means)) and np.all(np.isfinite(errors)))
+    for name, rule, part in rules:
+        if applicable:
+            out[name] = thermodynamic_integration(lams[part], means[part], errors[part], rule=rule)
+        else:
+            out[name] = Estimate(math.nan, math.nan, "ti", "not applicable", 0,
+                                 {"warning": "⟨∂u/∂λ⟩ is infinite in some window (a region one end forbids): the integrand jumps at an end"})
+    if not all(e.is_finite for e in out.values()):
+        warnings.append("TI does not apply here: ⟨∂u/∂λ⟩ is infinite in some window, because one end state "
+                        "forbids (u = +inf) a region the other allows; MBAR and BAR are unaffected.")
+    return out
+
 
 def _overlap_warnings(lams: np.ndarray, overlap: np.ndarray) -> tuple[list[str], list[float], list[float]]:
     warnings, inserts, neighbour = [], [], []
@@ -353,8 +403,10 @@ def estimate_windows(
     sample_cap = 4096 if samples_per_window is None else int(samples_per_window)
     need = int(count * (overhead + 16 * (per_call * ASSUMED_THINNING + analysis_per_sample)))
     if budget < need or sample_cap < 16:
-        raise ValueError(f"budget={budget} is too small for {count} windows with {chains} chains each: about {need} "
-                         "evaluations are needed for 16 samples per window; raise budget, use fewer windows or chains")
+        raise InputError(f"budget={budget:,} is too small for {count} windows with {chains} chains each: about {need:,} "
+                         "evaluations are needed for 16 samples per window. Raise the budget (CLI --budget, API "
+                         "budget=), use fewer windows (windows=) or chains (chains=), or the switching route "
+                         "(method='switching').")
     # the sampler may spend this much per window on warm-up and burn-in (it stops once equilibrated)
     equilibration_share = int(0.6 * share)
 
@@ -389,19 +441,24 @@ def estimate_windows(
         sampled[k] = s
         cost["sampling"] += s.evaluations
         warnings.extend(s.warnings)
+    flagged_budget = False
     if not exchange:
-        # equal samples in every window; a sample of window k costs ⌈τ_k⌉ sampler steps plus its analysis
-        strides = np.array([_stride(s) for s in sampled])
+        # equal samples in every window, as many as the rest of the budget pays for exactly
         left = budget - cost["sampling"]
-        samples_per_window = int(min(sample_cap, left // np.sum(strides * per_call + analysis_per_sample)))
+        samples_per_window = _affordable_samples(sampled, left, sample_cap, per_call, analysis_per_sample)
         if samples_per_window < 16:
-            samples_per_window = 16
-            warnings.append("equilibrating the windows used nearly the whole budget; 16 samples per window were drawn "
-                            "anyway, so the budget is exceeded. Raise the budget or use fewer windows.")
+            # too little left for a production run: analyse the chains' current positions only
+            samples_per_window = min(len(s.samples) for s in sampled)
+            warnings.append(f"equilibrating the windows used nearly the whole budget: only {samples_per_window} "
+                            "samples per window (the chains' final positions) are analysed, and they may be too few "
+                            "for trustworthy error bars. Raise the budget or use fewer windows.")
+            flagged_budget = True
         production_keys = jax.random.split(k_production, count)
-        for k in range(count):
+        for k in range(count if not flagged_budget else 0):
+            before = len(sampled[k].warnings)
             spent = _produce(production_keys[k], window_target(path, float(lams[k])), sampled[k], samples_per_window)
             cost["sampling"] += spent
+            warnings.extend(sampled[k].warnings[before:])
     timings["sampling"] = time.perf_counter() - t0
 
     # ---- optional replica exchange production (replaces the per-window production samples)
@@ -461,7 +518,7 @@ def estimate_windows(
 
     # ---- estimators
     t0 = time.perf_counter()
-    flagged = False
+    flagged = flagged_budget
     finite = np.isfinite(reduced) | (reduced == np.inf)
     if not np.all(finite):
         reduced = np.where(np.isnan(reduced) | (reduced == -np.inf), np.inf, reduced)
@@ -472,12 +529,10 @@ def estimate_windows(
     estimates: dict[str, Estimate] = {"mbar": multistate.endpoint}
     estimates["bar_ladder"] = neighbour_bar(reduced, counts)
     inefficiency = [_statistical_inefficiency(d, s.chains - s.stuck_chains) for d, s in zip(derivative, sampled)]
-    means = np.array([float(np.mean(d)) for d in derivative])
-    errors = np.array([float(np.std(d, ddof=1) * math.sqrt(g / d.size)) for d, g in zip(derivative, inefficiency)])
-    estimates["ti_trapezoid"] = thermodynamic_integration(lams, means, errors, rule="trapezoid")
-    if gl_weights is not None:
-        estimates["ti_gauss_legendre"] = thermodynamic_integration(lams[1:-1], means[1:-1], errors[1:-1],
-                                                                   rule="gauss-legendre")
+    with np.errstate(invalid="ignore"):   # an infinite ∂u/∂λ (a forbidden region) gives inf/NaN here: TI then does not apply
+        means = np.array([float(np.mean(d)) for d in derivative])
+        errors = np.array([float(np.std(d, ddof=1) * math.sqrt(g / d.size)) for d, g in zip(derivative, inefficiency)])
+    estimates.update(_integration_estimates(lams, means, errors, gl_weights is not None, warnings))
     msgs, inserts, neighbour_overlap = _overlap_warnings(lams, multistate.overlap)
     warnings.extend(msgs)
     if msgs:
@@ -490,7 +545,10 @@ def estimate_windows(
         warnings.append(f"window λ = {lams[worst]:.4g}: kept samples are still correlated (∂u/∂λ autocorrelation "
                         f"{inefficiency[worst]:.1f} samples); TI errors are widened for it, MBAR/BAR errors may be "
                         "too small.")
-    if not all(s.equilibrated for s in sampled):
+    forbidden = sum(s.forbidden_proposals for s in sampled)
+    if forbidden:
+        warnings.extend(nonfinite_warnings("window sampling", 0, forbidden))
+    if not all(s.equilibrated for s in sampled) or any(s.nan_proposals for s in sampled):
         flagged = True
     if multistate.endpoint.is_finite:
         headline, reason = "mbar", ("MBAR uses the samples of every window at once and is the minimum-variance "

@@ -129,5 +129,5 @@ def test_decoupling_gives_the_kolafa_nezbeda_excess_chemical_potential():
     second = beta_excess_chemical_potential(jzg_residual_free_energy, temperature, density)
     print(f"βμ_ex = {beta_mu:.4f} ± {error:.4f}; Kolafa–Nezbeda {reference:.5f}; JZG {second:.5f}; "
           f"{result.energy_evaluations:,} evaluations, {result.timings['total']:.0f} s")
-    assert error < 0.1
+    assert error < 0.15   # the tool's stated accuracy promise (fe_tool.validation): stderr ≤ 0.15 kT
     assert abs(beta_mu - reference) <= max(0.1, 4 * error)

@@ -10,6 +10,8 @@ References beside the checks:
 * LJ fluid: T* = 2, ρ* = 0.3, soft-core decoupling (Beutler et al. 1994, Chem. Phys. Lett. 222, 529).
 """
 import equinox as eqx
+import math
+
 import jax
 import jax.numpy as jnp
 import numpy as np
@@ -185,13 +187,14 @@ def test_training_reduces_forward_work_spread_on_lj_decoupling(key):
           f"{before['spread']:.3f} -> {after['spread']:.3f} (ratio {after['spread'] / before['spread']:.3f}), "
           f"{out.optimiser_steps} steps, {out.evaluations} evaluations")
     assert isinstance(out.control, PairForceControl) and after["nonfinite"] == 0
-    # 128 paired validation trajectories (same starts, same noise): each spread has a sampling error
-    # of ~ s/√(2·127) ≈ 6%. Measured ratios over five sampling/training seeds: 0.70 (this one), 0.84,
-    # 0.85, 0.86, 0.92 — a real but modest cut, so the check is loose; the mean work is the robust signal
-    assert after["spread"] / before["spread"] < 0.93
-    # mean forward work (= dissipation + Δf): standard error ≈ 0.75/√128 ≈ 0.07 kT (less when paired);
-    # measured drops 0.33–0.40 kT over the same five seeds
-    assert after["mean"] < before["mean"] - 0.15
+    # The mean forward work (= dissipation + Δf) is the robust signal: over 128 validation trajectories
+    # its standard error is at most √(s_before² + s_after²)/√128 (less when paired). The control must
+    # cut it by more than 3 of those, i.e. significantly.
+    standard_error = math.hypot(before["spread"], after["spread"]) / math.sqrt(128)
+    assert after["mean"] < before["mean"] - 3.0 * standard_error
+    # and it must not widen the work distribution beyond the spread's own sampling error
+    # (relative ≈ 1/√(2·127) ≈ 6 % each, 3 combined errors ≈ 27 %)
+    assert after["spread"] < before["spread"] * (1.0 + 3.0 * math.sqrt(2.0) / math.sqrt(2 * 127))
 
 
 # ---------------------------------------------------------------- (5) checks that score both directions, robust spread

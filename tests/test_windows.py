@@ -22,7 +22,8 @@ def test_ladder_gauss_legendre_includes_end_states():
     np.testing.assert_allclose(lams[1:-1], 0.5 + 0.5 * np.array([-math.sqrt(0.6), 0.0, math.sqrt(0.6)]), atol=1e-12)
     np.testing.assert_allclose(weights, [5 / 18, 4 / 9, 5 / 18], atol=1e-12)
     lams, weights = window_ladder(5, "uniform")
-    np.testing.assert_allclose(lams, np.linspace(0, 1, 5)) and weights is None
+    np.testing.assert_allclose(lams, np.linspace(0, 1, 5))
+    assert weights is None
     with pytest.raises(ValueError, match="from 0 to 1"):
         window_ladder([0.1, 0.5, 1.0])
 

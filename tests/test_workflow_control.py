@@ -19,11 +19,14 @@ def test_learned_control_result_is_correct_and_counts_training(tmp_path):
     df, se = r.in_kT()
     assert abs(df - exact) <= max(0.1, 4 * se), r.summary()
     assert r.cost.get("training", 0) > 0
-    assert r.energy_evaluations == sum(r.cost.values()) <= 600_000 * 1.05
+    assert r.energy_evaluations == sum(r.cost.values()) <= 600_000
     assert "control" in r.extras and r.to_dict()["extras"]["control"]["training_evaluations"] == r.cost["training"]
-    if saved.exists():  # reuse: no training cost beyond the checks, same system accepted
-        r2 = fe_tool.estimate(ua, ub, xa, xb, seed=3, budget=400_000, control=str(saved))
-        assert abs(r2.in_kT()[0] - exact) <= max(0.1, 4 * r2.in_kT()[1])
+    # control="learned" always keeps what it trained, so the file must exist; reuse it: no training
+    # cost beyond the checks, and the same system is accepted
+    assert saved.exists(), r.extras["control_decision"]
+    r2 = fe_tool.estimate(ua, ub, xa, xb, seed=3, budget=400_000, control=str(saved))
+    assert abs(r2.in_kT()[0] - exact) <= max(0.1, 4 * r2.in_kT()[1])
+    assert r2.energy_evaluations <= 400_000
 
 
 def test_auto_control_says_what_it_decided():

@@ -40,6 +40,8 @@ from .training import SPREAD_MEASURES, evaluate, evaluate_recorded, make_optimis
 MODES = ("learned", "auto", "reuse")
 VALIDATE = ("forward", "both")
 STEP_LEARNING = ("none", "global", "per_step")
+MIN_OPTIMISER_STEPS = 50
+"""Training that cannot afford this many optimiser steps after its validation runs is not started."""
 KEEP_THRESHOLD = 0.8
 """``"auto"`` keeps a control when the predicted variance ratio is below this (a margin
 for the noise of a 128-trajectory spread comparison, about ±10% in the ratio)."""
@@ -321,11 +323,12 @@ def prepare_control(key, path: Path, samples_a, samples_b, lams, step_sizes, pre
         return ControlOutcome(None, lams, step_sizes, 0, [], nothing, nothing, empty, empty, empty, empty,
                               reason, False, 1.0, mode, objective, k_train, 0, 0, "not started", lams_t, eps_t, settings)
 
-    if allowance < 4 * run_cost + (0 if mode == "reuse" else 2 * trajectories_per_step * (k_train + 1) * per_point):
+    least_steps = 0 if mode == "reuse" else MIN_OPTIMISER_STEPS * 2 * trajectories_per_step * (k_train + 1) * per_point
+    if allowance < 4 * run_cost + least_steps:
         return no_budget_outcome(
             f"No control: the budget of {budget:,} evaluations allows at most {allowance:,} for training, too few "
-            f"for the before/after validation runs ({4 * run_cost:,}) and any optimiser step; switching runs "
-            "uncontrolled on the given protocol.")
+            f"for the before/after validation runs ({4 * run_cost:,}) and {MIN_OPTIMISER_STEPS} optimiser steps "
+            f"({least_steps:,}); switching runs uncontrolled on the given protocol.")
 
     # ---------------------------------------------------------------- before: uncontrolled on the given protocol
     baseline = Controller(None, Protocol.from_schedule(lams_t, eps_t))

@@ -78,11 +78,14 @@ def jackknife_noise(groups: int) -> float:
 
 
 def with_grouped_error(estimate, point: Callable[[np.ndarray, np.ndarray], float], work_forward: np.ndarray,
-                       work_reverse: np.ndarray, chains_forward: int, chains_reverse: int):
+                       work_reverse: np.ndarray, chains_forward: int, chains_reverse: int,
+                       keep_forward: np.ndarray | None = None, keep_reverse: np.ndarray | None = None):
     """``estimate`` (an :class:`~fe_tool.estimators.record.Estimate`) with its error made chain-robust.
 
     Works are grouped by the sampling chain their start came from (:func:`chain_groups`; works
-    in trajectory order, non-finite ones dropped together with their labels). The reported error
+    in trajectory order). ``keep_forward``/``keep_reverse`` select the works the estimator used
+    (default: the finite ones); dropped works leave together with their labels, +∞ works kept
+    by the caller stay. The reported error
     becomes the larger of the estimate's own error and the grouped jackknife error, so it is never
     smaller than either; ``details`` gain ``stderr_chain_jackknife``, ``chain_error_ratio`` and
     ``jackknife_noise`` (the ratio's expected spread when works are independent).
@@ -91,7 +94,8 @@ def with_grouped_error(estimate, point: Callable[[np.ndarray, np.ndarray], float
 
     wf, wr = np.asarray(work_forward, np.float64), np.asarray(work_reverse, np.float64)
     gf, gr = chain_groups(wf.size, chains_forward), chain_groups(wr.size, chains_reverse)
-    keep_f, keep_r = np.isfinite(wf), np.isfinite(wr)
+    keep_f = np.isfinite(wf) if keep_forward is None else np.asarray(keep_forward, bool)
+    keep_r = np.isfinite(wr) if keep_reverse is None else np.asarray(keep_reverse, bool)
     jack = grouped_jackknife_stderr(point, wf[keep_f], wr[keep_r], gf[keep_f], gr[keep_r])
     groups = min(np.unique(gf[keep_f]).size, np.unique(gr[keep_r]).size)
     details = {**estimate.details, "stderr_chain_jackknife": jack,

@@ -53,6 +53,7 @@ import numpy as np
 from scipy.special import logsumexp
 
 from fe_tool.estimators.record import Estimate
+from fe_tool.estimators.tail import UNRELIABLE_SHAPE, weight_tail_shape
 
 __all__ = [
     "DEFAULT_BOOTSTRAP_SEED",
@@ -241,7 +242,6 @@ def _gaussian_model(centre: float, width: float, degrees: int, count: int, resam
 
 TAIL_FRACTION = 0.2
 MIN_TAIL_WORKS = 20  # θ̂ from fewer tail works is too noisy (relative s.d. 1/√n) to act on
-_GAUSSIAN_TAIL_DEPTH = 0.5582  # E[q − w | w < q] / σ for a Gaussian, q its 20 % quantile: φ(z)/0.2 − |z|, z = −0.8416
 
 
 def _tail_model(works: np.ndarray, count: int, resamples: int, rng: np.random.Generator) -> tuple[float, float, float]:
@@ -268,26 +268,21 @@ def _tail_model(works: np.ndarray, count: int, resamples: int, rng: np.random.Ge
     # exact exponential average under the model with the fitted θ (finite only for θ < 1)
     frac = tail.size / works.size
     log_body = logsumexp(-body) - math.log(body.size) + math.log(1 - frac)
-    if theta < 1.0:
-        log_tail = -q - math.log(1.0 - theta) + math.log(frac)
-        exact = -float(np.logaddexp(log_body, log_tail))
-    else:
-        exact = -math.inf
     errors = np.empty(resamples)
     n_tail = rng.binomial(count, frac, resamples)
     thetas = theta * tail.size / rng.gamma(tail.size, 1.0, resamples)  # θ uncertainty (inverse-gamma)
     for i in range(resamples):
+        if thetas[i] >= 1.0:   # the model's mean weight is infinite: the error is unbounded
+            errors[i] = math.inf
+            continue
         drawn = np.concatenate([rng.choice(body, count - n_tail[i]), q - rng.exponential(thetas[i], n_tail[i])])
-        if thetas[i] < 1.0:
-            lt = -q - math.log(1.0 - thetas[i]) + math.log(frac)
-            truth = -float(np.logaddexp(log_body, lt))
-        else:
-            truth = -math.inf
+        truth = -float(np.logaddexp(log_body, -q - math.log(1.0 - thetas[i]) + math.log(frac)))
         errors[i] = exponential_average(drawn) - truth
     finite = errors[np.isfinite(errors)]
     if finite.size < resamples // 2:
         return math.inf, math.inf, theta
-    del exact
+    # draws with θ ≥ 1 are left out: whether the tail is that heavy is judged by the Pareto shape
+    # of the weights (fe_tool.estimators.tail), which marks such averages unreliable
     return float(np.mean(finite)), float(np.quantile(np.abs(finite), 0.95) / 1.959963984540054), theta
 
 
@@ -365,15 +360,16 @@ def jarzynski(
     centre, left_width, degrees = _lower_half_gaussian(finite)
     bias_model, stderr_model, how = _gaussian_model(centre, left_width, degrees, count, n_bootstrap, generator)
 
-    bias_tail, stderr_tail, tail_shape = _tail_model(finite, count, n_bootstrap, generator)
-    # the tail model only counts when the low tail is heavier than the Gaussian model's:
-    # a Gaussian of width σ has mean distance 0.558σ below its 20 % quantile
-    heavy_tail = math.isfinite(tail_shape) and tail_shape > _GAUSSIAN_TAIL_DEPTH * left_width
-    if not heavy_tail:
-        bias_tail, stderr_tail = 0.0, 0.0
+    # the exponential-tail model always counts: a sample that missed a heavy tail looks light,
+    # so gating the model on the sample's own tail would drop it exactly when it is needed
+    bias_tail, stderr_tail, tail_scale = _tail_model(finite, count, n_bootstrap, generator)
+    if not math.isfinite(stderr_tail):
+        bias_tail = 0.0
+    tail_shape = weight_tail_shape(values)
 
-    bias = max(0.0, bias_leading, bias_boot, bias_model, bias_tail)
+    bias = max(0.0, bias_leading, bias_boot, bias_model, bias_tail if math.isfinite(bias_tail) else 0.0)
     stderr = max(math.hypot(max(stderr_delta, stderr_boot), bias), stderr_model, stderr_tail)
+    reliable = not (math.isfinite(tail_shape) and tail_shape >= UNRELIABLE_SHAPE)
     details.update(
         stderr_delta_method=stderr_delta,
         stderr_bootstrap=stderr_boot,
@@ -386,7 +382,16 @@ def jarzynski(
         gaussian_model_width=left_width,
         stderr_tail_model=stderr_tail,
         bias_tail_model=sign * bias_tail,
+        tail_exponential_scale=tail_scale,
         tail_shape=tail_shape,
-        heavy_low_tail=heavy_tail,
+        reliable=reliable,
     )
+    if not reliable:
+        # the weights have infinite variance: no standard error exists, whatever the sample shows
+        details["stderr_if_finite_variance"] = stderr
+        details["unreliable_reason"] = (
+            f"the weights e^(-w) have a heavy tail (Pareto shape {tail_shape:.2f} ≥ {UNRELIABLE_SHAPE}): "
+            "their variance is infinite, so this one-sided average has no standard error and is usually "
+            "too high in its own direction")
+        stderr = math.inf
     return Estimate(sign * run_estimate, stderr, "jarzynski", "bias-aware", count, details)
