@@ -65,13 +65,14 @@ import numpy as np  # noqa: E402
 
 from fe_tool.control import PairForceControl, bind_control, prepare_control  # noqa: E402
 from fe_tool.estimators import bar  # noqa: E402
-from fe_tool.planning import PILOT_SCALES, plan_protocol, schedule_from_profile  # noqa: E402
+from fe_tool.routes.planning import PILOT_SCALES, plan_protocol, schedule_from_profile  # noqa: E402
 from fe_tool.sampling import end_target, sample_state  # noqa: E402
 from fe_tool.switching import run_in_batches, switching_evaluations  # noqa: E402
 from fe_tool.systemfile import load_system  # noqa: E402
 from fe_tool.estimators.spread import robust_spread  # noqa: E402
-from fe_tool.workflow import (PILOT_STEPS, SAMPLING_SHARE, _schedule_pilot, _switching_step_sizes,  # noqa: E402
-                             step_scale_pilot)
+from fe_tool.routes.switching import (PILOT_STEPS, _schedule_pilot, _switching_step_sizes,  # noqa: E402
+                                     step_scale_pilot)
+from fe_tool.routes.budget import SAMPLING_SHARE  # noqa: E402
 
 ROOT = pathlib.Path(__file__).resolve().parent.parent
 

@@ -14,7 +14,7 @@ import pathlib
 import time
 
 import fe_tool  # noqa: F401  (float64, compilation cache)
-from fe_tool.comparison import compare_routes
+from fe_tool.routes.comparison import compare_routes
 from fe_tool.systemfile import load_system
 
 ROOT = pathlib.Path(__file__).resolve().parent.parent

@@ -33,6 +33,9 @@ class Options:
             ``"windows"`` (equilibrium λ-windows analysed with MBAR, BAR and TI).
         windows, spacing, exchange: the windows route's ladder (count or λ array), its
             spacing (``"gauss-legendre"``, ``"uniform"``, ...) and Hamiltonian replica exchange.
+        exchange_every, samples_per_window, window_starts: the windows route's sampler steps
+            between exchange attempts, kept samples per window (default from the budget) and
+            where windows start (``"ends"`` or ``"chain"``, see :func:`fe_tool.routes.windows.estimate_windows`).
         budget: total energy evaluations the call may spend (end-state sampling, pilot,
             training and switching, or every window); ``None`` means the default budget when
             the protocol is chosen automatically, and no limit when both ``switching_steps``
@@ -63,6 +66,9 @@ class Options:
     windows: Any = None
     spacing: str = "gauss-legendre"
     exchange: bool = False
+    exchange_every: int = 10
+    samples_per_window: int | None = None
+    window_starts: str = "ends"
     budget: int | None = None
     switching_steps: int | None = None
     trajectories: int | None = None
@@ -210,6 +216,12 @@ def _check_control(control: Any) -> Any:
 def _check_route_fit(opts: Options) -> None:
     """Options that belong to one route only are refused on the other."""
     if opts.method != "windows":
+        windows_only = [n for n in ("windows", "samples_per_window") if getattr(opts, n) is not None]
+        windows_only += [n for n, default in (("exchange", False), ("exchange_every", 10), ("window_starts", "ends"))
+                         if getattr(opts, n) != default]
+        if windows_only:
+            raise InputError(f"option(s) {windows_only} belong to the windows route; drop them or use "
+                             "method='windows'")
         return
     switching_only = [n for n in ("switching_steps", "trajectories", "step_scale", "save_control")
                       if getattr(opts, n) is not None]
@@ -233,6 +245,9 @@ def check_options(options: dict) -> Options:
         method=_text(o.method, "method", METHODS),
         spacing=_text(o.spacing, "spacing", SPACINGS),
         exchange=bool(_flag(o.exchange, "exchange")),
+        exchange_every=whole_number(o.exchange_every, "exchange_every", 1, allow_none=False),
+        samples_per_window=whole_number(o.samples_per_window, "samples_per_window", 16),
+        window_starts=_text(o.window_starts, "window_starts", ("ends", "chain")),
         budget=whole_number(o.budget, "budget", 1),
         switching_steps=steps,
         trajectories=whole_number(o.trajectories, "trajectories", 2),

@@ -168,9 +168,20 @@ def switching_evaluations(path: Path, trajectories: int, steps: int) -> int:
     return int(trajectories) * (int(steps) + 1) * path.evaluations_per_point(1)
 
 
+def padded_trajectories(trajectories: int, batch: int) -> tuple[int, int]:
+    """``(batch size, trajectories computed)`` for running ``trajectories`` in equal batches of at most ``batch``.
+
+    Batches are made as equal as possible so the padding of the last one (computed, counted,
+    then dropped) is below the number of batches.
+    """
+    trajectories = int(trajectories)
+    batches = -(-trajectories // max(1, int(batch)))
+    size = -(-trajectories // batches)
+    return size, size * batches
+
+
 def switching_evaluations_padded(path: Path, trajectories: int, steps: int, batch: int) -> int:
     """Evaluations :func:`run_in_batches` really spends (batch padding included), one direction."""
-    from .budget import padded_trajectories
 
     return switching_evaluations(path, padded_trajectories(trajectories, batch)[1], steps)
 
@@ -179,12 +190,11 @@ def run_in_batches(path, control, key, starts, lams, step_sizes, precision_a, pr
                    batch: int = 256):
     """:func:`switch_jit` over ``starts`` in fixed-size batches (bounded memory, one compilation).
 
-    Batches are as equal as possible (:func:`fe_tool.budget.padded_trajectories`); the last one
+    Batches are as equal as possible (:func:`padded_trajectories`); the last one
     is padded with copies of its first start and the padding dropped, so fewer trajectories than
     batches are wasted (:func:`switching_evaluations_padded` counts them).
     Returns numpy float64 works (T,), increments (T, K) and final positions.
     """
-    from .budget import padded_trajectories
 
     if direction not in ("forward", "reverse"):
         raise ValueError(f"direction must be 'forward' or 'reverse', got {direction!r}")

@@ -1,69 +1,26 @@
 """``estimate()``: from two energy functions to ΔF with an honest error bar.
 
-Host-side orchestration only. The switching route runs named stages —
-validate → plan the budget → sample both end states → pilot switching to size the protocol →
-(train a control) → switch both ways → estimators and diagnostics → :class:`Result` —
-and every stochastic stage gets its own named subkey of ``jax.random.key(seed)``.
-The windows route (:mod:`fe_tool.windows`) shares the validation.
+The entry point every caller uses (the CLI, batches and notebooks too): one validation of
+every input and option (:func:`validate_call`, before any computation; refusals raise
+:class:`~fe_tool.options.InputError`), then the chosen route of :mod:`fe_tool.routes` —
+each route plans its budget before it computes anything, then runs its stages.
 """
 from __future__ import annotations
 
-import dataclasses
-import math
 import time
 from typing import Any
 
 import equinox as eqx
-import jax
 import jax.numpy as jnp
 import numpy as np
 
-from . import diagnostics as diag
-from .budget import (MIN_TRAJECTORIES, PILOT_STEPS, SAMPLING_SHARE, SwitchingBudget, affordable_trajectories,
-                     plan_switching_budget)
-from .estimators import bar, crooks_gaussian, jarzynski, solve_bar, work_overlap
-from .estimators.grouped import with_grouped_error
-from .estimators.spread import robust_spread
 from .inputs import check_energy, validate_inputs
 from .options import CONTROL_MODES, METHODS, OPTION_NAMES, InputError, Options, check_options, check_seed  # noqa: F401
-from .path import LinearPath, make_schedule
-from .planning import PilotPoint, length_profile, plan_protocol, schedule_from_profile
-from .progress import progress_bar, progress_enabled
+from .path import LinearPath
 from .results import Result
-from .sampling import StateSamples, end_target, nonfinite_warnings, sample_state
-from .switching import run_in_batches, switching_evaluations_padded
+from .routes.switching import DEFAULT_BUDGET, mark_diverged, plan_switching, run_switching
 
-DEFAULT_BUDGET = 1_000_000
-SWITCH_BATCH = 128
-PAIR_AUTO_NOTE = ("not trained: for particle systems control=\"auto\" leaves the pair-force control off (on the "
-                  "Lennard-Jones decoupling benchmark it cut the insertion work spread at equal steps, but its training "
-                  "never paid for itself at equal budget); control=\"learned\" trains it")
-__all__ = ["DEFAULT_BUDGET", "OPTION_NAMES", "Options", "SAMPLING_SHARE", "estimate", "mark_diverged"]
-
-
-def mark_diverged(works: np.ndarray) -> np.ndarray:
-    """True where a trajectory diverged: its work is NaN or −∞.
-
-    A large or infinite *positive* work is not a divergence: an inserted particle that lands
-    on a neighbour legitimately does 10²–10³⁰ kT of work. Such trajectories are kept; their
-    weight e^{−w} in every estimator is (nearly) zero, and dropping them would bias ΔF.
-    """
-    works = np.asarray(works, dtype=np.float64)
-    return np.isnan(works) | (works == -np.inf)
-
-
-@dataclasses.dataclass
-class _Ledger:
-    """What a run has spent and found so far: cost per stage, warnings, flag, timings."""
-
-    cost: dict[str, int] = dataclasses.field(default_factory=dict)
-    warnings: list[str] = dataclasses.field(default_factory=list)
-    timings: dict[str, float] = dataclasses.field(default_factory=dict)
-    flagged: bool = False
-
-    @property
-    def spent(self) -> int:
-        return int(sum(self.cost.values()))
+__all__ = ["DEFAULT_BUDGET", "OPTION_NAMES", "Options", "estimate", "mark_diverged", "validate_call"]
 
 
 # ------------------------------------------------------------------ validation
@@ -125,410 +82,6 @@ def validate_call(energy_a, energy_b, start_a, start_b, kT, seed, options: dict)
     return opts, x_a, x_b, kT, seed, starts
 
 
-# ------------------------------------------------------------------ estimators and headline
-
-def usable_works(works: np.ndarray) -> np.ndarray:
-    """The works every estimator uses: all but the diverged ones (NaN, −∞); +∞ stays (zero weight)."""
-    works = np.asarray(works, dtype=np.float64)
-    return works[~mark_diverged(works)]
-
-
-def run_estimators(work_forward: np.ndarray, work_reverse: np.ndarray, seed: int) -> tuple[dict, float]:
-    """All switching estimators (reduced units) and the forward/reverse overlap.
-
-    Diverged works (NaN, −∞) are left out (they are counted and flagged elsewhere); large and
-    infinite positive works stay in every estimator with their (near) zero weight. The Crooks
-    Gaussian fit cannot take +∞ works: it drops them and says so in its details.
-    """
-    rng = np.random.default_rng(seed)
-    wf, wr = usable_works(work_forward), usable_works(work_reverse)
-    estimates = {
-        "jarzynski_forward": with_reach(jarzynski(wf, direction="forward", rng=rng), wf, wr, "forward"),
-        "jarzynski_reverse": with_reach(jarzynski(wr, direction="reverse", rng=rng), wr, wf, "reverse"),
-        "crooks_gaussian": crooks_gaussian(wf, wr, rng=rng, nonfinite="drop"),
-        "bar": bar(wf, wr),
-    }
-    return estimates, float(work_overlap(wf, wr, estimates["bar"].delta_f))
-
-
-def with_reach(estimate, own: np.ndarray, other: np.ndarray, direction: str):
-    """Mark a one-sided average unreliable when none of its works reaches where its weight lies.
-
-    By Crooks' relation the works that dominate the forward exponential average are those near
-    the negated works of typical reverse trajectories, and vice versa (Jarzynski 2006, Phys.
-    Rev. E 73, 046105 — from memory). If not one of this direction's works lies at or below the
-    median of the other direction's negated works, the average has not reached its dominant
-    region: its value is typically too high in its own direction and its own error bar cannot
-    know it (the sample looks well behaved). The other direction's works are independent data,
-    so this check does not share the blind spot of the tail-shape check.
-    """
-    import dataclasses
-
-    target = float(np.median(-other))
-    reach = int(np.sum(own <= target))
-    details = {**estimate.details, "works_reaching_other_side": reach}
-    if reach == 0 and estimate.details.get("reliable", True):
-        other_name = "reverse" if direction == "forward" else "forward"
-        details.update(reliable=False, stderr_if_converged=estimate.stderr, unreliable_reason=(
-            f"none of its {own.size} works reaches the typical negated {other_name} work ({target:.3g} kT), where "
-            "this exponential average gets its weight, so it has not converged"))
-        return dataclasses.replace(estimate, stderr=math.inf, details=details)
-    return dataclasses.replace(estimate, details=details)
-
-
-def choose_one_sided(estimates: dict, work_forward: np.ndarray, work_reverse: np.ndarray) -> str:
-    """Which one-sided average to report when the directions barely overlap, without looking at errors.
-
-    A forward exponential average converges once forward trajectories reach the works typical of
-    reverse ones, which takes about exp(dissipation of the *reverse* process) trajectories, and
-    vice versa (Jarzynski 2006, Phys. Rev. E 73, 046105 — from memory). So the direction whose
-    opposite process dissipates less is chosen, with dissipation measured by medians (robust
-    to rare huge works) about the BAR value: d_F = median w_F − Δf, d_R = median w_R + Δf.
-    The rule uses neither estimate's error bar, so choosing cannot favour a sample that
-    happened to miss its tail.
-    """
-    wf, wr = usable_works(work_forward), usable_works(work_reverse)
-    centre = estimates["bar"].delta_f if math.isfinite(estimates["bar"].delta_f) else \
-        0.5 * (float(np.median(wf)) - float(np.median(wr)))
-    dissipation_forward = float(np.median(wf)) - centre
-    dissipation_reverse = float(np.median(wr)) + centre
-    return "jarzynski_forward" if dissipation_reverse <= dissipation_forward else "jarzynski_reverse"
-
-
-def choose_headline(estimates: dict, overlap: float, work_forward: np.ndarray,
-                    work_reverse: np.ndarray) -> tuple[str, str]:
-    """Pick the estimator to report and say why (BAR unless the directions barely overlap)."""
-    b = estimates["bar"]
-    if b.is_finite and overlap >= diag.OVERLAP_FLAG:
-        return "bar", ("BAR uses both directions and is the minimum-variance estimator when the work "
-                       f"distributions overlap (overlap {overlap:.2f})")
-    name = choose_one_sided(estimates, work_forward, work_reverse)
-    other = "reverse" if name == "jarzynski_forward" else "forward"
-    return name, (f"forward and reverse works barely overlap (overlap {overlap:.3g}), so a one-sided average is "
-                  f"reported: the one whose opposite ({other}) process dissipates less, which converges with fewer "
-                  "trajectories")
-
-
-# ------------------------------------------------------------------ pilot switching
-
-def _switching_step_sizes(lams: np.ndarray, samples_a: StateSamples, samples_b: StateSamples, scale: float) -> np.ndarray:
-    mid = 0.5 * (lams[:-1] + lams[1:])
-    log_eps = (1 - mid) * math.log(samples_a.step_size) + mid * math.log(samples_b.step_size)
-    return scale * np.exp(log_eps)
-
-
-def _schedule_pilot(path, key, samples_a, samples_b, precision_a, precision_b, cost, scales, trajectories=64,
-                    tries: int = 2):
-    """Pilot on the linear schedule; return (λ grid, normalised length profile) for an adaptive schedule."""
-    lams0 = make_schedule("linear", PILOT_STEPS)
-    n = min(trajectories, len(samples_a.samples), len(samples_b.samples))
-    variance = np.full(PILOT_STEPS, np.nan)
-    # a moderate step first (the largest pilot step is the one most likely to blow up), then smaller
-    for scale in ([s for s in scales if s <= 0.5] or list(scales))[:tries]:
-        eps0 = _switching_step_sizes(lams0, samples_a, samples_b, scale)
-        kf, kr, key = jax.random.split(key, 3)
-        wf, inc_f, _ = run_in_batches(path, None, kf, samples_a.samples[:n], lams0, eps0, precision_a, precision_b, "forward", n)
-        wr, inc_r, _ = run_in_batches(path, None, kr, samples_b.samples[:n], lams0, eps0, precision_a, precision_b, "reverse", n)
-        cost["pilot"] += 2 * switching_evaluations_padded(path, n, PILOT_STEPS, n)
-        # trajectories whose every step is finite (one that crosses a forbidden region has ∞ − ∞ steps)
-        ok_f, ok_r = np.isfinite(inc_f).all(axis=1), np.isfinite(inc_r).all(axis=1)
-        if ok_f.sum() > 8 and ok_r.sum() > 8:
-            # reverse increments run from λ = 1 to 0: flip them onto the forward grid
-            variance = 0.5 * (inc_f[ok_f].var(axis=0) + inc_r[ok_r][:, ::-1].var(axis=0))
-            break
-    if not np.all(np.isfinite(variance)):
-        return lams0, lams0.copy()
-    return lams0, length_profile(lams0, variance)
-
-
-def step_scale_pilot(path, key, samples_a, samples_b, precision_a, precision_b, lams, scales, cost,
-                     trajectories: int = 64) -> list[PilotPoint]:
-    """Uncontrolled pilot switching on ``lams`` at each step scale; the points the protocol planner fits.
-
-    Adds the pilot's evaluations to ``cost["pilot"]``.
-    """
-    n = min(trajectories, len(samples_a.samples), len(samples_b.samples))
-    steps = len(lams) - 1
-    points = []
-    for scale in scales:
-        eps = _switching_step_sizes(lams, samples_a, samples_b, scale)
-        kf, kr, key = jax.random.split(key, 3)
-        wf, _, _ = run_in_batches(path, None, kf, samples_a.samples[:n], lams, eps, precision_a, precision_b, "forward", n)
-        wr, _, _ = run_in_batches(path, None, kr, samples_b.samples[:n], lams, eps, precision_a, precision_b, "reverse", n)
-        cost["pilot"] += 2 * switching_evaluations_padded(path, n, steps, n)
-        bad_f, bad_r = mark_diverged(wf), mark_diverged(wr)
-        ok_f, ok_r = wf[~bad_f], wr[~bad_r]
-        # medians, not means: insertion-type switching has rare overlap works of 1e3–1e30 kT that sit far
-        # outside the overlap region BAR uses but would decide a mean (for Gaussian works they agree)
-        enough = ok_f.size > 2 and ok_r.size > 2
-        hysteresis = float(np.median(ok_f) + np.median(ok_r)) if enough else float("inf")
-        spread = float(max(robust_spread(ok_f), robust_spread(ok_r))) if enough else float("inf")
-        points.append(PilotPoint(steps, scale, hysteresis, spread, int(bad_f.sum() + bad_r.sum())))
-    return points
-
-
-# ------------------------------------------------------------------ stages of the switching route
-
-def _sample_ends(keys, path, x_a, x_b, starts, opts: Options, plan: SwitchingBudget, samples_wanted: int,
-                 ledger: _Ledger) -> dict[str, StateSamples]:
-    t0 = time.perf_counter()
-    sampled = {}
-    for end, k_end, x0 in (("a", keys[0], x_a), ("b", keys[1], x_b)):
-        s = sample_state(k_end, end_target(path, end), x0, samples=samples_wanted, chains=plan.chains,
-                         evaluation_budget=int(plan.sampling_cap), precondition=opts.precondition,
-                         name=f"end state {end.upper()}", starts=starts[end])
-        sampled[end] = s
-        ledger.cost[f"sampling_{end}"] = s.evaluations
-        ledger.warnings.extend(s.warnings)
-    if not all(s.equilibrated for s in sampled.values()) or any(s.nan_proposals for s in sampled.values()):
-        ledger.flagged = True
-    forbidden = sum(s.forbidden_proposals for s in sampled.values())
-    if forbidden:
-        ledger.warnings.extend(nonfinite_warnings("end-state sampling", 0, forbidden))
-    ledger.timings["sampling"] = time.perf_counter() - t0
-    return sampled
-
-
-def _pilot_and_plan(key, path, sampled, precision, opts: Options, budget: int | None, plan: SwitchingBudget,
-                    ledger: _Ledger):
-    """Pilot runs, then K, step scale and trajectories; returns ``(plan, lams, step_sizes, points)``."""
-    t0 = time.perf_counter()
-    samples_a, samples_b = sampled["a"], sampled["b"]
-    ledger.cost["pilot"] = 0
-    points: list[PilotPoint] = []
-    schedule_for = (lambda k: make_schedule(opts.schedule, k))
-    k_shape, k_pilot = jax.random.split(key)
-    if isinstance(opts.schedule, str) and opts.schedule == "adaptive":
-        profile_lams, profile = _schedule_pilot(path, k_shape, samples_a, samples_b, *precision, ledger.cost,
-                                                plan.pilot_scales or (opts.step_scale or 0.4,),
-                                                plan.pilot_trajectories or 64)
-        schedule_for = (lambda k: schedule_from_profile(profile_lams, profile, k))
-    if plan.pilot_scales:
-        points.extend(step_scale_pilot(path, k_pilot, samples_a, samples_b, *precision,
-                                       schedule_for(PILOT_STEPS), plan.pilot_scales, ledger.cost,
-                                       plan.pilot_trajectories))
-    remaining = (budget - ledger.spent) if budget is not None else 10**15
-    available = min(len(samples_a.samples), len(samples_b.samples))
-    per_point = path.evaluations_per_point(1)
-    protocol = plan_protocol(points, remaining=remaining, per_point=per_point, available=available,
-                             steps=opts.switching_steps, trajectories=opts.trajectories, scale=opts.step_scale,
-                             batch=SWITCH_BATCH)
-    if points and all(p.diverged for p in points):
-        ledger.warnings.append("every pilot switching run had diverging trajectories, even at 1/16 of the sampler's "
-                               "step; the energy may be too steep for Langevin switching.")
-    lams = schedule_for(protocol.steps) if not isinstance(opts.schedule, np.ndarray) else np.asarray(opts.schedule)
-    step_sizes = _switching_step_sizes(lams, samples_a, samples_b, protocol.scale)
-    ledger.timings["pilot"] = time.perf_counter() - t0
-    return protocol, lams, step_sizes, points
-
-
-def _prepare_control(opts, key, path, samples_a, samples_b, lams, step_sizes, precision_a, precision_b, remaining,
-                     probe):
-    """Train, decide on or reuse a control; returns (drift, lams, step_sizes, report, outcome)."""
-    from .control import ControlOutcome, LoadedControl, load_control, prepare_control
-
-    settings = dict(opts.control_settings or {})
-    if getattr(path, "nonbonded", None) is not None and "network" not in settings and "warm_start" not in settings:
-        # particle systems with a nonbonded model: the permutation- and rotation-equivariant pair-force control
-        settings["network"] = {"kind": "pair_force"}
-        # insertion (B→A) works carry rare overlap outliers of 1e3–1e30 kT: score both directions
-        # with the robust spread (1.4826·MAD), or the checks and the keep/drop decision follow noise
-        settings.setdefault("validate", "both")
-        settings.setdefault("spread_measure", "robust")
-    reuse = opts.control
-    if isinstance(reuse, str) and reuse not in CONTROL_MODES:
-        reuse = load_control(reuse, expected_fingerprint=path.fingerprint_probe(np.asarray(probe)), path=path)
-    if isinstance(reuse, (ControlOutcome, LoadedControl)):
-        settings.setdefault("warm_start", reuse)
-        mode = "reuse"
-    else:
-        mode = opts.control
-    outcome = prepare_control(key, path, jnp.asarray(samples_a.samples), jnp.asarray(samples_b.samples),
-                              jnp.asarray(lams), jnp.asarray(step_sizes), precision_a, precision_b, mode=mode,
-                              budget=int(remaining), progress=progress_enabled(opts.progress), **settings)
-    report = outcome.to_dict()
-    return outcome.drift, np.asarray(outcome.lams), np.asarray(outcome.step_sizes), report, outcome
-
-
-def _control_stage(key, path, sampled, precision, opts: Options, lams, step_sizes, budget, plan: SwitchingBudget,
-                   kT: float, x_a, ledger: _Ledger):
-    """Train or reuse a control within what the budget leaves after a minimal production run.
-
-    Returns ``(drift, lams, step_sizes, report)``; ``drift`` is ``None`` without a control.
-    """
-    ledger.cost["training"] = 0
-    if opts.control == "none":
-        return None, lams, step_sizes, None
-    pair_system = getattr(path, "nonbonded", None) is not None and not opts.control_settings
-    if opts.control == "auto" and pair_system:
-        # measured (benchmarks/bench_pair_control_lj.py): on LJ decoupling the pair-force control cuts the
-        # insertion work spread at equal steps but never repaid its training at equal budget
-        return None, lams, step_sizes, {"decision": PAIR_AUTO_NOTE, "training_evaluations": 0, "kept": False}
-    t0 = time.perf_counter()
-    remaining = (budget - ledger.spent) if budget is not None else 10**12
-    # training may use at most half of what it is given: keep a minimal production run out of its reach
-    spendable = max(0, remaining - plan.minimum_switching) if budget is not None else remaining
-    drift, lams, step_sizes, report, trained = _prepare_control(
-        opts, key, path, sampled["a"], sampled["b"], lams, step_sizes, *precision, int(spendable), x_a)
-    ledger.cost["training"] = int(report["training_evaluations"])
-    if report["training_evaluations"] == 0 and not report.get("decision", "").startswith("No control"):
-        report["decision"] = ("No control trained: " + report.get("decision", "")).strip()
-    if opts.save_control and trained is not None:
-        from .control import save_control
-        save_control(opts.save_control, trained, fingerprint=path.fingerprint_probe(np.asarray(x_a)),
-                     settings={"switching_steps": len(lams) - 1, "kT": kT})
-    ledger.warnings.extend(report.get("warnings", []))
-    ledger.timings["training"] = time.perf_counter() - t0
-    return drift, lams, step_sizes, report
-
-
-def _production_size(protocol_trajectories: int, opts: Options, budget, steps: int, per_point: int,
-                     available: int, ledger: _Ledger) -> int:
-    """Trajectories per direction that the budget still pays for (batch padding included)."""
-    if opts.trajectories is not None:
-        return int(min(opts.trajectories, available))
-    if budget is None:
-        return int(min(protocol_trajectories, available))
-    count = affordable_trajectories(budget - ledger.spent, steps, per_point, SWITCH_BATCH, available)
-    return int(min(count, available))
-
-
-def _switch_stage(keys, path, drift, sampled, precision, lams, step_sizes, trajectories: int, ledger: _Ledger):
-    t0 = time.perf_counter()
-    steps = len(lams) - 1
-    forward, inc_forward, _ = run_in_batches(path, drift, keys[0], sampled["a"].samples[:trajectories], lams,
-                                             step_sizes, *precision, "forward", SWITCH_BATCH)
-    reverse, _, _ = run_in_batches(path, drift, keys[1], sampled["b"].samples[:trajectories], lams,
-                                   step_sizes, *precision, "reverse", SWITCH_BATCH)
-    ledger.cost["switching"] = 2 * switching_evaluations_padded(path, trajectories, steps, SWITCH_BATCH)
-    ledger.timings["switching"] = time.perf_counter() - t0
-    return forward, reverse, inc_forward
-
-
-def _estimate_stage(work_forward, work_reverse, sampled, seed: int, ledger: _Ledger):
-    """Estimators, headline choice and every diagnostic; returns ``(estimates, headline, reason, overlap, info)``."""
-    t0 = time.perf_counter()
-    msgs, serious = diag.check_divergence(work_forward, work_reverse)
-    ledger.warnings.extend(msgs)
-    ledger.flagged |= serious
-    ledger.warnings.extend(diag.describe_large_works(work_forward, work_reverse))
-    estimates, overlap = run_estimators(work_forward, work_reverse, seed)
-    if estimates["bar"].is_finite:
-        # trajectories i start from sample i, drawn from healthy chain i mod (healthy chains)
-        keep_f, keep_r = ~mark_diverged(work_forward), ~mark_diverged(work_reverse)
-        estimates["bar"] = with_grouped_error(
-            estimates["bar"], solve_bar, work_forward, work_reverse,
-            sampled["a"].chains - sampled["a"].stuck_chains, sampled["b"].chains - sampled["b"].stuck_chains,
-            keep_forward=keep_f, keep_reverse=keep_r)
-    headline, reason = choose_headline(estimates, overlap, work_forward, work_reverse)
-    if headline == "bar":
-        ledger.warnings.extend(diag.check_chain_correlation(estimates["bar"]))
-    msgs, weight_info = diag.check_weights(work_forward, work_reverse)
-    ledger.warnings.extend(msgs)
-    for check in (diag.check_overlap(overlap), diag.check_headline(estimates[headline], headline),
-                  diag.check_agreement(estimates, headline)):
-        ledger.warnings.extend(check[0])
-        ledger.flagged |= check[1]
-    ledger.timings["estimators"] = time.perf_counter() - t0
-    return estimates, headline, reason, overlap, weight_info
-
-
-def _report(path, opts: Options, kT, seed, budget, plan: SwitchingBudget, sampled, protocol, points, lams,
-            step_sizes, works, inc_forward, control_report, estimates, headline, reason, overlap, weight_info,
-            ledger: _Ledger) -> Result:
-    work_forward, work_reverse = works
-    steps = len(lams) - 1
-    healthy = np.isfinite(inc_forward).all(axis=1)   # trajectories with every step's work finite
-    work_per_step = inc_forward[healthy].mean(axis=0) if healthy.any() else np.full(steps, np.nan)
-    samples_a, samples_b = sampled["a"], sampled["b"]
-    settings = {
-        "switching_steps": steps, "trajectories": int(work_forward.size),
-        "schedule": opts.schedule if isinstance(opts.schedule, str) else "explicit",
-        "budget": budget, "chains": plan.chains, "step_scale": protocol.scale,
-        "control": opts.control if isinstance(opts.control, str) else type(opts.control).__name__, "seed": seed,
-        "path": path.description(),
-        "precondition": bool(samples_a.preconditioner.std() > 0 or samples_b.preconditioner.std() > 0),
-    }
-    diagnostics = {
-        "sampling_a": samples_a.diagnostics(), "sampling_b": samples_b.diagnostics(),
-        "overlap": overlap, "pilot": [dataclasses.asdict(p) for p in points], "plan": dataclasses.asdict(protocol),
-        "budget_plan": dataclasses.asdict(plan),
-        "diverged_forward": int(mark_diverged(work_forward).sum()),
-        "diverged_reverse": int(mark_diverged(work_reverse).sum()),
-        "switching_step_size_a": float(step_sizes[0]), "switching_step_size_b": float(step_sizes[-1]),
-        **weight_info,
-    }
-    head = estimates[headline]
-    extras = {"lambdas": lams, "work_per_step_forward": work_per_step}
-    if control_report:
-        extras.update(control=control_report, control_decision=control_report.get("decision", ""))
-    return Result(
-        delta_f=head.delta_f * kT, stderr=head.stderr * kT, estimator=headline, choice_reason=reason,
-        estimates={k: v.scaled(kT) for k, v in estimates.items()},
-        work_forward=work_forward, work_reverse=work_reverse,
-        energy_evaluations=ledger.spent, cost=dict(ledger.cost), kT=kT, units=opts.units,
-        diagnostics=diagnostics, warnings=ledger.warnings, flagged=bool(ledger.flagged), settings=settings,
-        timings=ledger.timings, reference=opts.reference, extras=extras)
-
-
-def _plan(path, opts: Options) -> tuple[int | None, SwitchingBudget]:
-    """The budget (``None``: a fixed protocol without limit) and its split into stages."""
-    fixed = opts.switching_steps is not None and opts.trajectories is not None
-    budget = opts.budget if opts.budget is not None else (None if fixed else DEFAULT_BUDGET)
-    plan = plan_switching_budget(budget, per_point=path.evaluations_per_point(1),
-                                 end_evaluations=path.end_evaluations(), chains=opts.chains,
-                                 switching_steps=opts.switching_steps, trajectories=opts.trajectories,
-                                 step_scale=opts.step_scale,
-                                 adaptive_schedule=isinstance(opts.schedule, str) and opts.schedule == "adaptive")
-    return budget, plan
-
-
-def _switching_route(path, x_a, x_b, kT: float, seed: int, starts, opts: Options, budget: int | None,
-                     plan: SwitchingBudget, t_start: float) -> Result:
-    per_point = path.evaluations_per_point(1)
-    samples_wanted = opts.trajectories or int(np.clip((budget or DEFAULT_BUDGET) // 400, 64, 2048))
-    k_sample_a, k_sample_b, k_pilot, k_forward, k_reverse, k_control = jax.random.split(jax.random.key(seed), 6)
-    ledger = _Ledger()
-    stages = progress_bar(5, "ΔF by switching", enabled=opts.progress, unit="stage", leave=False)
-    stages.set_postfix_str("sampling the end states")
-    sampled = _sample_ends((k_sample_a, k_sample_b), path, x_a, x_b, starts, opts, plan, samples_wanted, ledger)
-    precision = (jnp.asarray(1.0 / sampled["a"].preconditioner), jnp.asarray(1.0 / sampled["b"].preconditioner))
-    stages.update(1)
-    stages.set_postfix_str("pilot switching")
-    protocol, lams, step_sizes, points = _pilot_and_plan(k_pilot, path, sampled, precision, opts, budget, plan, ledger)
-    stages.update(1)
-    stages.set_postfix_str("control")
-    drift, lams, step_sizes, control_report = _control_stage(k_control, path, sampled, precision, opts, lams,
-                                                             step_sizes, budget, plan, kT, x_a, ledger)
-    available = min(len(sampled["a"].samples), len(sampled["b"].samples))
-    trajectories = _production_size(protocol.trajectories, opts, budget, len(lams) - 1, per_point, available, ledger)
-    _check_enough(trajectories, opts, ledger)
-    stages.update(1)
-    stages.set_postfix_str(f"switching {trajectories} trajectories × {len(lams) - 1} steps, both ways")
-    forward, reverse, inc_forward = _switch_stage((k_forward, k_reverse), path, drift, sampled, precision, lams,
-                                                  step_sizes, trajectories, ledger)
-    stages.update(1)
-    found = _estimate_stage(forward, reverse, sampled, seed, ledger)
-    stages.update(1)
-    stages.close()
-    ledger.timings["total"] = time.perf_counter() - t_start
-    return _report(path, opts, kT, seed, budget, plan, sampled, protocol, points, lams, step_sizes,
-                   (forward, reverse), inc_forward, control_report, *found, ledger)
-
-
-def _check_enough(trajectories: int, opts: Options, ledger: _Ledger) -> None:
-    """Fewer production trajectories than asked for or than :data:`MIN_TRAJECTORIES`: say so and flag."""
-    if opts.trajectories is not None:
-        if trajectories < opts.trajectories:
-            ledger.warnings.append(f"only {trajectories} equilibrium samples were available as starts, fewer than the "
-                                   f"{opts.trajectories} trajectories asked for; raise the budget or the chains.")
-        return
-    if trajectories < MIN_TRAJECTORIES:
-        ledger.flagged = True
-        ledger.warnings.append(f"the budget left only {trajectories} trajectories per direction (fewer than "
-                               f"{MIN_TRAJECTORIES}): the error bar is unreliable. Raise the budget.")
-
-
 def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int = 0, **options) -> Result:
     """ΔF = F_B − F_A between two end-state potentials, with an honest error bar.
 
@@ -557,17 +110,18 @@ def estimate(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int
         opts, x_a, x_b, kT, seed, starts = validate_call(energy_a, energy_b, start_a, start_b, kT, seed, options)
     except ValueError as err:   # every refusal before computing is bad input, whatever raised it
         raise InputError(str(err)) from None
-    if opts.method == "windows":
-        from .windows import estimate_windows
-
-        return estimate_windows(energy_a, energy_b, x_a, x_b, kT=kT, seed=seed,
-                                budget=opts.budget or DEFAULT_BUDGET, windows=opts.windows, spacing=opts.spacing,
-                                chains=opts.chains, exchange=opts.exchange, path=opts.path, units=opts.units,
-                                reference=opts.reference, starts_a=starts["a"], starts_b=starts["b"])
     path = opts.path if opts.path is not None else LinearPath(energy_a, energy_b, kT)
+    if opts.method == "windows":
+        from .routes.windows import plan_windows, run_windows
+
+        try:
+            plan = plan_windows(path, opts, opts.budget or DEFAULT_BUDGET)
+        except ValueError as err:
+            raise InputError(str(err)) from None
+        return run_windows(path, x_a, x_b, kT, seed, starts, opts, plan, t_start)
     try:
         _check_reused_control(opts, path, x_a)
-        budget, plan = _plan(path, opts)
+        budget, plan = plan_switching(path, opts)
     except ValueError as err:
         raise InputError(str(err)) from None
-    return _switching_route(path, x_a, x_b, kT, seed, starts, opts, budget, plan, t_start)
+    return run_switching(path, x_a, x_b, kT, seed, starts, opts, budget, plan, t_start)

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 import fe_tool
-from fe_tool.budget import MIN_TRAJECTORIES, plan_switching_budget
+from fe_tool.routes.budget import MIN_TRAJECTORIES, plan_switching_budget
 
 
 def harmonic_pair(dimensions, seed=5):

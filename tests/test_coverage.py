@@ -37,7 +37,7 @@ import pytest
 from fe_tool.estimators import bar, jarzynski, mbar, thermodynamic_integration
 from fe_tool.path import LinearPath, make_schedule
 from fe_tool.switching import switch_jit
-from fe_tool.windows import window_ladder
+from fe_tool.routes.windows import window_ladder
 
 from calibration import coverage_floor, describe, interval_coverage
 

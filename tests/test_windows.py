@@ -5,8 +5,8 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
-from fe_tool.comparison import compare_routes
-from fe_tool.windows import estimate_windows, window_ladder
+from fe_tool.routes.comparison import compare_routes
+from fe_tool.routes.windows import estimate_windows, window_ladder
 
 
 def harmonic_pair(dim, k_a, k_b, centre_b):

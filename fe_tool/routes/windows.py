@@ -24,6 +24,7 @@ every chain (stuck ones too), the exchange energies and the analysis energies.
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 import time
 from typing import Any
@@ -33,11 +34,11 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from .estimators import gauss_legendre_windows, mbar, neighbour_bar, thermodynamic_integration
-from .estimators.record import Estimate
-from .path import SCHEDULES, LinearPath, Path, make_schedule
-from .results import Result
-from .sampling import (
+from ..estimators import gauss_legendre_windows, mbar, neighbour_bar, thermodynamic_integration
+from ..estimators.record import Estimate
+from ..path import SCHEDULES, LinearPath, Path, make_schedule
+from ..results import Result
+from ..sampling import (
     ChainState,
     StateSamples,
     autocorrelation_time,
@@ -48,8 +49,8 @@ from .sampling import (
     sample_state,
     window_target,
 )
-from .inputs import validate_inputs
-from .options import InputError
+from ..options import InputError, Options
+from .ledger import Ledger
 
 DEFAULT_WINDOWS = 10             # with a budget: at most this many (see _default_window_count)
 OVERLAP_WARNING = 0.03           # smallest acceptable MBAR overlap between neighbouring windows
@@ -313,53 +314,296 @@ def _overlap_warnings(lams: np.ndarray, overlap: np.ndarray) -> tuple[list[str],
     return warnings, inserts, neighbour
 
 
-def estimate_windows(
-    energy_a,
-    energy_b,
-    start_a,
-    start_b,
-    *,
-    kT: float = 1.0,
-    seed: int = 0,
-    budget: int = 1_000_000,
-    windows: int | np.ndarray | list | None = None,
-    spacing: str = "gauss-legendre",
-    chains: int | None = None,
-    samples_per_window: int | None = None,
-    exchange: bool = False,
-    exchange_every: int = 10,
-    window_starts: str = "ends",
-    path: Path | None = None,
-    units: str = "energy units",
-    reference: dict | None = None,
-    starts_a=None,
-    starts_b=None,
-) -> Result:
+@dataclasses.dataclass(frozen=True)
+class WindowsPlan:
+    """The ladder and the budget of a windows run, fixed before any computation.
+
+    Attributes:
+        budget: total evaluations; lams, gl_weights: the ladder (see :func:`window_ladder`).
+        chains: sampler chains per window; per_call: evaluations per sampler step.
+        analysis_per_sample: evaluations to score one sample at every window (and ∂u/∂λ).
+        derivative_free: ∂u/∂λ comes from the ladder energies (linear path).
+        sample_cap: most kept samples per window; equilibration_share: most evaluations a
+            window's sampler may spend on warm-up and burn-in.
+    """
+
+    budget: int
+    lams: np.ndarray
+    gl_weights: np.ndarray | None
+    chains: int
+    per_call: int
+    analysis_per_sample: int
+    derivative_free: bool
+    sample_cap: int
+    equilibration_share: int
+
+    @property
+    def count(self) -> int:
+        return int(self.lams.size)
+
+
+def plan_windows(path: Path, opts: Options, budget: int) -> WindowsPlan:
+    """The ladder, chains and budget split of a windows run; refuses a budget that cannot work."""
+    windows = opts.windows
+    if windows is None:
+        # every window needs ~25 000 evaluations for warm-up, burn-in and a few hundred samples
+        total = int(np.clip(budget // 25_000, 4, DEFAULT_WINDOWS + 2))
+        windows = total - 2 if opts.spacing == "gauss-legendre" else total
+    lams, gl_weights = window_ladder(windows, opts.spacing)
+    count = lams.size
+    per_call = path.evaluations_per_point(1)
+    derivative_free = isinstance(path, LinearPath)   # ∂u/∂λ = u_B − u_A comes from the ladder energies
+    analysis = path.evaluations_per_point(count) + (0 if derivative_free else path.evaluations_per_point(1))
+    share = budget / count
+    chains = opts.chains or int(np.clip(share // (per_call * 2500), 4, 64))
+    overhead = chains * per_call * 600     # warm-up and the shortest burn-in of one window
+    sample_cap = 4096 if opts.samples_per_window is None else int(opts.samples_per_window)
+    need = int(count * (overhead + 16 * (per_call * ASSUMED_THINNING + analysis)))
+    if budget < need or sample_cap < 16:
+        raise InputError(f"budget={budget:,} is too small for {count} windows with {chains} chains each: about {need:,} "
+                         "evaluations are needed for 16 samples per window. Raise the budget (CLI --budget, API "
+                         "budget=), use fewer windows (windows=) or chains (chains=), or the switching route "
+                         "(method='switching').")
+    return WindowsPlan(int(budget), lams, gl_weights, int(chains), per_call, analysis, derivative_free, sample_cap,
+                       int(0.6 * share))
+
+
+def _window_order(lams: np.ndarray, window_starts: str) -> list[int]:
+    if window_starts == "ends":
+        return list(range(lams.size))
+    # inwards from both ends, so each window starts next to a sampled neighbour
+    return [k for k in range(lams.size) if lams[k] < 0.5] + [k for k in range(lams.size) if lams[k] >= 0.5][::-1]
+
+
+def _sample_windows(key, path, plan: WindowsPlan, x_a, x_b, starts, window_starts: str, ledger: Ledger):
+    """Equilibrate every window (one sample per chain); production is sized afterwards."""
+    lams, count = plan.lams, plan.count
+    window_keys = jax.random.split(key, count)
+    sampled: list[StateSamples | None] = [None] * count
+    for k in _window_order(lams, window_starts):
+        if window_starts == "chain" and k not in (0, count - 1):
+            neighbour = k - 1 if lams[k] < 0.5 else k + 1
+            x0 = jnp.asarray(sampled[neighbour].samples[-1])
+        else:
+            x0 = x_a if lams[k] < 0.5 else x_b
+        from_end = window_starts == "ends" or k in (0, count - 1)
+        start_set = (starts["a"] if lams[k] < 0.5 else starts["b"]) if from_end else None
+        s = sample_state(window_keys[k], window_target(path, float(lams[k])), x0, samples=plan.chains,
+                         chains=plan.chains, evaluation_budget=plan.equilibration_share,
+                         name=f"window {k} (λ = {lams[k]:.4g})", starts=start_set)
+        sampled[k] = s
+        ledger.cost["sampling"] += s.evaluations
+        ledger.warnings.extend(s.warnings)
+    return sampled
+
+
+def _produce_windows(key, path, plan: WindowsPlan, sampled, ledger: Ledger) -> int:
+    """Equal samples in every window, as many as the rest of the budget pays for exactly."""
+    left = plan.budget - ledger.spent
+    samples = _affordable_samples(sampled, left, plan.sample_cap, plan.per_call, plan.analysis_per_sample)
+    if samples < 16:
+        # too little left for a production run: analyse the chains' current positions only
+        samples = min(len(s.samples) for s in sampled)
+        ledger.warnings.append(f"equilibrating the windows used nearly the whole budget: only {samples} samples per "
+                               "window (the chains' final positions) are analysed, and they may be too few for "
+                               "trustworthy error bars. Raise the budget or use fewer windows.")
+        ledger.flagged = True
+        return samples
+    production_keys = jax.random.split(key, plan.count)
+    for k in range(plan.count):
+        before = len(sampled[k].warnings)
+        ledger.cost["sampling"] += _produce(production_keys[k], window_target(path, float(plan.lams[k])), sampled[k],
+                                            samples)
+        ledger.warnings.extend(sampled[k].warnings[before:])
+    return samples
+
+
+def _exchange_production(key, path, plan: WindowsPlan, sampled, exchange_every: int, shape, ledger: Ledger):
+    """Production with Hamiltonian replica exchange; replaces every window's samples."""
+    lams, count, chains, per_call = plan.lams, plan.count, plan.chains, plan.per_call
+    if count < 2:
+        raise InputError("exchange needs at least two windows")
+    starts = np.stack([s.samples[np.arange(chains) % len(s.samples)] for s in sampled])
+    stride = max(1, int(math.ceil(np.median([s.autocorrelation_time for s in sampled]))))
+    steps_per_sweep = max(exchange_every, 1)
+    # keep positions every ceil(τ/steps_per_sweep) sweeps so kept samples stay decorrelated
+    keep_every = max(1, int(math.ceil(stride / steps_per_sweep)))
+    sweep_cost = chains * per_call * (count * (steps_per_sweep + 1) + 2 * (count - 1))
+    per_kept_sweep = keep_every * sweep_cost + chains * count * plan.analysis_per_sample
+    kept_sweeps = int(min((plan.budget - ledger.spent) // per_kept_sweep, max(1, math.ceil(plan.sample_cap / chains))))
+    if kept_sweeps < 1:
+        ledger.flagged = True
+        ledger.warnings.append("equilibrating the windows used the whole budget: no replica-exchange sweep was "
+                               "affordable, so the chains' final positions are analysed. Raise the budget.")
+        return min(len(s.samples) for s in sampled), {}
+    sweeps = kept_sweeps * keep_every
+    samples = kept_sweeps * chains
+    trace, swap_prob, step_acc = _exchange_jit(
+        path, key, jnp.asarray(starts), jnp.asarray(lams),
+        jnp.asarray([s.step_size for s in sampled]), jnp.asarray(np.stack([s.preconditioner for s in sampled])),
+        sweeps=sweeps, steps_per_sweep=steps_per_sweep)
+    kept = np.moveaxis(np.asarray(trace)[keep_every - 1::keep_every], 1, 0)    # (K, sweeps', C, ...)
+    kept = kept.reshape((count, -1) + tuple(shape))[:, :samples]
+    for k in range(count):
+        sampled[k].samples = kept[k]
+    pair_acceptance = np.nanmean(np.asarray(swap_prob), axis=(0, 2))
+    ledger.cost["exchange"] = int(sweeps * sweep_cost)
+    for k, a in enumerate(pair_acceptance):
+        if a < 0.05:
+            ledger.warnings.append(f"replica exchange between λ = {lams[k]:.4g} and λ = {lams[k + 1]:.4g} accepted only "
+                                   f"{a:.1%} of swaps; the windows there are too far apart for exchange to help.")
+    return samples, {"exchange_acceptance": pair_acceptance, "exchange_sweeps": sweeps,
+                     "exchange_steps_per_sweep": steps_per_sweep,
+                     "exchange_step_acceptance": np.asarray(step_acc).mean(axis=(0, 2))}
+
+
+def _analyse(path, plan: WindowsPlan, sampled, ledger: Ledger):
+    """Reduced energies of every sample at every window, and ∂u/∂λ per window."""
+    lams, count = plan.lams, plan.count
+    counts = np.array([len(s.samples) for s in sampled], dtype=np.int64)
+    pooled = np.concatenate([np.asarray(s.samples) for s in sampled])
+    reduced = _batched(_ladder_energies, path, pooled, jnp.asarray(lams)).T   # (K, N)
+    ledger.cost["analysis"] = int(pooled.shape[0] * path.evaluations_per_point(count))
+    edges = np.concatenate([[0], np.cumsum(counts)])
+    derivative = []
+    for k in range(count):
+        if plan.derivative_free:
+            derivative.append(reduced[-1, edges[k]:edges[k + 1]] - reduced[0, edges[k]:edges[k + 1]])
+        else:
+            derivative.append(_batched(_lambda_derivatives, path, pooled[edges[k]:edges[k + 1]], jnp.asarray(lams[k])))
+    if not plan.derivative_free:
+        ledger.cost["analysis"] += int(pooled.shape[0] * path.evaluations_per_point(1))
+    return reduced, counts, derivative
+
+
+def _estimate_windows(plan: WindowsPlan, reduced, counts, derivative, sampled, ledger: Ledger):
+    """MBAR (headline), neighbour BAR and TI, with every diagnostic; returns estimates and what they need."""
+    lams = plan.lams
+    finite = np.isfinite(reduced) | (reduced == np.inf)
+    if not np.all(finite):
+        reduced = np.where(np.isnan(reduced) | (reduced == -np.inf), np.inf, reduced)
+        ledger.warnings.append(f"{int((~finite).sum())} reduced energies were NaN or −inf and were treated as "
+                               "impossible configurations (+inf).")
+        ledger.flagged = True
+    multistate = mbar(reduced, counts)
+    estimates: dict[str, Estimate] = {"mbar": multistate.endpoint, "bar_ladder": neighbour_bar(reduced, counts)}
+    inefficiency = [_statistical_inefficiency(d, s.chains - s.stuck_chains) for d, s in zip(derivative, sampled)]
+    with np.errstate(invalid="ignore"):   # an infinite ∂u/∂λ (a forbidden region) gives inf/NaN: TI does not apply
+        means = np.array([float(np.mean(d)) for d in derivative])
+        errors = np.array([float(np.std(d, ddof=1) * math.sqrt(g / d.size)) for d, g in zip(derivative, inefficiency)])
+    estimates.update(_integration_estimates(lams, means, errors, plan.gl_weights is not None, ledger.warnings))
+    msgs, inserts, neighbour_overlap = _overlap_warnings(lams, multistate.overlap)
+    ledger.warnings.extend(msgs)
+    ledger.flagged |= bool(msgs)
+    if "warning" in multistate.endpoint.details:
+        ledger.warnings.append("MBAR: " + multistate.endpoint.details["warning"])
+        ledger.flagged = True
+    if max(inefficiency) > 2.0:
+        worst = int(np.argmax(inefficiency))
+        ledger.warnings.append(f"window λ = {lams[worst]:.4g}: kept samples are still correlated (∂u/∂λ "
+                               f"autocorrelation {inefficiency[worst]:.1f} samples); TI errors are widened for it, "
+                               "MBAR/BAR errors may be too small.")
+    forbidden = sum(s.forbidden_proposals for s in sampled)
+    if forbidden:
+        ledger.warnings.extend(nonfinite_warnings("window sampling", 0, forbidden))
+    if not all(s.equilibrated for s in sampled) or any(s.nan_proposals for s in sampled):
+        ledger.flagged = True
+    headline, reason = _windows_headline(estimates, neighbour_overlap, ledger)
+    found = {"multistate": multistate, "inefficiency": inefficiency, "means": means, "errors": errors,
+             "inserts": inserts, "neighbour_overlap": neighbour_overlap}
+    return estimates, headline, reason, found
+
+
+def _windows_headline(estimates: dict[str, Estimate], neighbour_overlap, ledger: Ledger) -> tuple[str, str]:
+    if estimates["mbar"].is_finite:
+        headline, reason = "mbar", ("MBAR uses the samples of every window at once and is the minimum-variance "
+                                    f"estimator for them (smallest neighbour overlap {min(neighbour_overlap):.2f})")
+    else:
+        headline, reason = "bar_ladder", "MBAR did not give a finite answer; BAR between neighbouring windows shown"
+    head = estimates[headline]
+    for name, est in estimates.items():
+        if name != headline and est.is_finite and head.is_finite:
+            scale = math.hypot(est.stderr, head.stderr)
+            if scale > 0 and abs(est.delta_f - head.delta_f) > 4 * scale:
+                ledger.warnings.append(f"{name} ({est.delta_f:.3f} kT) differs from {headline} ({head.delta_f:.3f} kT) "
+                                       f"by {abs(est.delta_f - head.delta_f) / scale:.1f} combined errors; for TI this "
+                                       "usually means the λ grid is too coarse where ∂u/∂λ changes fast.")
+    return headline, reason
+
+
+def _report_windows(path, opts: Options, plan: WindowsPlan, kT, seed, sampled, samples_per_window, estimates,
+                    headline, reason, found, exchange_info, ledger: Ledger) -> Result:
+    window_diagnostics = [{"lambda": float(l), **s.diagnostics(), "samples": int(len(s.samples)),
+                           "derivative_inefficiency": float(g)}
+                          for l, s, g in zip(plan.lams, sampled, found["inefficiency"])]
+    diagnostics = {
+        "sampling_a": sampled[0].diagnostics(), "sampling_b": sampled[-1].diagnostics(),
+        "windows": window_diagnostics, "neighbour_overlap": found["neighbour_overlap"],
+        "smallest_neighbour_overlap": float(min(found["neighbour_overlap"])),
+        "stuck_chains": int(sum(s.stuck_chains for s in sampled)),
+        "mbar_converged": bool(found["multistate"].converged),
+    }
+    explicit = opts.windows is not None and not isinstance(opts.windows, (int, np.integer))
+    settings = {
+        "route": "windows", "windows": plan.count, "spacing": "explicit" if explicit else opts.spacing,
+        "samples_per_window": int(samples_per_window), "chains": plan.chains, "budget": plan.budget, "seed": seed,
+        "exchange": bool(opts.exchange), "window_starts": opts.window_starts, "path": path.description(),
+    }
+    extras = {
+        "lambdas": plan.lams, "free_energies": found["multistate"].free_energies, "overlap": found["multistate"].overlap,
+        "mean_derivative": found["means"], "stderr_derivative": found["errors"], "suggested_windows": found["inserts"],
+        **exchange_info,
+    }
+    head = estimates[headline]
+    return Result(
+        delta_f=head.delta_f * kT, stderr=head.stderr * kT, estimator=headline, choice_reason=reason,
+        estimates={k: v.scaled(kT) for k, v in estimates.items()},
+        work_forward=np.zeros(0), work_reverse=np.zeros(0),
+        energy_evaluations=ledger.spent, cost=dict(ledger.cost), kT=kT, units=opts.units,
+        diagnostics=diagnostics, warnings=ledger.warnings, flagged=bool(ledger.flagged), settings=settings,
+        timings=ledger.timings, reference=opts.reference, extras=extras)
+
+
+def run_windows(path, x_a, x_b, kT: float, seed: int, starts, opts: Options, plan: WindowsPlan,
+                t_start: float) -> Result:
+    """Sample every window, (exchange,) score every sample at every window, estimate, report."""
+    k_windows, k_production, k_exchange = jax.random.split(jax.random.key(seed), 3)
+    ledger = Ledger(cost={"sampling": 0})
+    t0 = time.perf_counter()
+    sampled = _sample_windows(k_windows, path, plan, x_a, x_b, starts, opts.window_starts, ledger)
+    exchange_info: dict[str, Any] = {}
+    if opts.exchange:
+        ledger.timings["sampling"] = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        samples, exchange_info = _exchange_production(k_exchange, path, plan, sampled, opts.exchange_every,
+                                                      x_a.shape, ledger)
+        ledger.timings["exchange"] = time.perf_counter() - t0
+    else:
+        samples = _produce_windows(k_production, path, plan, sampled, ledger)
+        ledger.timings["sampling"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    reduced, counts, derivative = _analyse(path, plan, sampled, ledger)
+    ledger.timings["energies"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    estimates, headline, reason, found = _estimate_windows(plan, reduced, counts, derivative, sampled, ledger)
+    ledger.timings["estimators"] = time.perf_counter() - t0
+    ledger.timings["total"] = time.perf_counter() - t_start
+    return _report_windows(path, opts, plan, kT, seed, sampled, samples, estimates, headline, reason, found,
+                           exchange_info, ledger)
+
+
+def estimate_windows(energy_a, energy_b, start_a, start_b, *, kT: float = 1.0, seed: int = 0, **options) -> Result:
     """ΔF = F_B − F_A from equilibrium samples of a ladder of λ windows (MBAR headline).
 
-    Args:
-        energy_a, energy_b: JAX-traceable U(x) -> scalar, in the user's energy units.
-        start_a, start_b: configurations where sampling begins (same shape).
-        kT: thermal energy in the energies' units.
-        seed: integer seed; the same seed reproduces the same numbers.
-        budget: total energy evaluations (sampling of all windows + exchange + analysis),
-            split evenly: every window gets the same samples and the same sampling share.
-        windows, spacing: the ladder, see :func:`window_ladder`.  Default: one window per
-            25 000 evaluations of budget, 4 to 12 windows (for Gauss–Legendre: 2 to 10 nodes plus
-            both ends), since each window pays its own warm-up and burn-in.
-        chains: sampler chains per window (default: from the budget share, 4 to 64).
-        samples_per_window: kept (decorrelated) samples per window; default from the budget.
-        exchange: Hamiltonian replica exchange between neighbouring windows in production.
-        exchange_every: sampler steps between exchange attempts.
-        window_starts: ``"ends"`` (windows with λ < 0.5 start from ``start_a``, the others
-            from ``start_b``) or ``"chain"`` (each window starts from a sample of the window
-            before it, going inwards from both ends).
-        path: a :class:`~fe_tool.path.Path` replacing the linear mixing.
-        starts_a, starts_b: optional start sets (k configurations stacked on a first axis) for
-            windows started from an end: chain i begins at ``starts[i mod k]`` (see
-            :func:`fe_tool.sampling.sample_state`).
-        units: name of the energy unit; reference: optional known ΔF ``{"delta_f", "source",
-            "tolerance"}`` in ``units``.
+    The same as :func:`fe_tool.estimate` with ``method="windows"``; the windows route's options
+    are ``windows`` and ``spacing`` (the ladder, see :func:`window_ladder`; default one window per
+    25 000 evaluations of budget, 4 to 12 windows), ``chains`` (per window; default from the
+    budget, 4 to 64), ``samples_per_window`` (kept samples; default from the budget),
+    ``exchange`` and ``exchange_every`` (Hamiltonian replica exchange between neighbouring
+    windows, every so many sampler steps), ``window_starts`` (``"ends"``: windows with λ < 0.5
+    start from ``start_a``, the others from ``start_b``; ``"chain"``: each from a sample of its
+    neighbour, inwards from both ends), plus ``budget``, ``path``, ``starts_a``/``starts_b``,
+    ``units`` and ``reference`` as for every route.
 
     Returns:
         :class:`~fe_tool.results.Result`; ``estimates``: ``mbar``, ``bar_ladder``,
@@ -372,223 +616,6 @@ def estimate_windows(
         >>> r = estimate_windows(lambda x: 0.5 * jnp.sum(x**2), lambda x: 2.0 * jnp.sum((x - 1)**2),
         ...                      jnp.zeros(3), jnp.ones(3), budget=200_000)   # ΔF = 1.5 ln 4 kT
     """
-    t_start = time.perf_counter()
-    if not isinstance(budget, (int, np.integer)) or budget < 1:
-        raise ValueError(f"budget must be a positive integer, got {budget!r}")
-    if window_starts not in ("ends", "chain"):
-        raise ValueError(f"window_starts must be 'ends' or 'chain', got {window_starts!r}")
-    if reference is not None and "delta_f" not in reference:
-        raise ValueError("reference must be a mapping with at least 'delta_f' (and ideally 'source', 'tolerance')")
-    if chains is not None and chains < 4:
-        raise ValueError(f"chains must be at least 4 (chain agreement is measured between chains), got {chains}")
-    if exchange_every < 1:
-        raise ValueError(f"exchange_every must be a positive number of sampler steps, got {exchange_every}")
-    x_a, x_b, kT = validate_inputs(energy_a, energy_b, start_a, start_b, kT)
-    path = path if path is not None else LinearPath(energy_a, energy_b, kT)
-    if windows is None:
-        # every window needs ~25 000 evaluations for warm-up, burn-in and a few hundred samples
-        total = int(np.clip(budget // 25_000, 4, DEFAULT_WINDOWS + 2))
-        windows = total - 2 if spacing == "gauss-legendre" else total
-    lams, gl_weights = window_ladder(windows, spacing)
-    count = lams.size
-    per_call = path.evaluations_per_point(1)
-    analysis_per_sample = path.evaluations_per_point(count)
-    derivative_free = isinstance(path, LinearPath)   # ∂u/∂λ = u_B − u_A comes from the ladder energies
-    if not derivative_free:
-        analysis_per_sample += path.evaluations_per_point(1)
-    share = budget / count
-    if chains is None:
-        chains = int(np.clip(share // (per_call * 2500), 4, 64))
-    overhead = chains * per_call * 600     # warm-up and the shortest burn-in of one window
-    sample_cap = 4096 if samples_per_window is None else int(samples_per_window)
-    need = int(count * (overhead + 16 * (per_call * ASSUMED_THINNING + analysis_per_sample)))
-    if budget < need or sample_cap < 16:
-        raise InputError(f"budget={budget:,} is too small for {count} windows with {chains} chains each: about {need:,} "
-                         "evaluations are needed for 16 samples per window. Raise the budget (CLI --budget, API "
-                         "budget=), use fewer windows (windows=) or chains (chains=), or the switching route "
-                         "(method='switching').")
-    # the sampler may spend this much per window on warm-up and burn-in (it stops once equilibrated)
-    equilibration_share = int(0.6 * share)
+    from ..workflow import estimate
 
-    key = jax.random.key(seed)
-    k_windows, k_production, k_exchange = jax.random.split(key, 3)
-    window_keys = jax.random.split(k_windows, count)
-    timings: dict[str, float] = {}
-    cost: dict[str, int] = {"sampling": 0}
-    warnings: list[str] = []
-
-    # ---- sample every window
-    t0 = time.perf_counter()
-    sampled: list[StateSamples | None] = [None] * count
-    if window_starts == "ends":
-        order = list(range(count))
-    else:   # inwards from both ends, so each window starts next to a sampled neighbour
-        low = [k for k in range(count) if lams[k] < 0.5]
-        high = [k for k in range(count) if lams[k] >= 0.5][::-1]
-        order = low + high
-    for k in order:
-        if window_starts == "chain" and k not in (0, count - 1):
-            neighbour = k - 1 if lams[k] < 0.5 else k + 1
-            x0 = jnp.asarray(sampled[neighbour].samples[-1])
-        else:
-            x0 = x_a if lams[k] < 0.5 else x_b
-        from_end = window_starts == "ends" or k in (0, count - 1)
-        start_set = (starts_a if lams[k] < 0.5 else starts_b) if from_end else None
-        # the sampler equilibrates (one sample per chain); production is sized below from what is left
-        s = sample_state(window_keys[k], window_target(path, float(lams[k])), x0, samples=chains,
-                         chains=chains, evaluation_budget=equilibration_share, name=f"window {k} (λ = {lams[k]:.4g})",
-                         starts=start_set)
-        sampled[k] = s
-        cost["sampling"] += s.evaluations
-        warnings.extend(s.warnings)
-    flagged_budget = False
-    if not exchange:
-        # equal samples in every window, as many as the rest of the budget pays for exactly
-        left = budget - cost["sampling"]
-        samples_per_window = _affordable_samples(sampled, left, sample_cap, per_call, analysis_per_sample)
-        if samples_per_window < 16:
-            # too little left for a production run: analyse the chains' current positions only
-            samples_per_window = min(len(s.samples) for s in sampled)
-            warnings.append(f"equilibrating the windows used nearly the whole budget: only {samples_per_window} "
-                            "samples per window (the chains' final positions) are analysed, and they may be too few "
-                            "for trustworthy error bars. Raise the budget or use fewer windows.")
-            flagged_budget = True
-        production_keys = jax.random.split(k_production, count)
-        for k in range(count if not flagged_budget else 0):
-            before = len(sampled[k].warnings)
-            spent = _produce(production_keys[k], window_target(path, float(lams[k])), sampled[k], samples_per_window)
-            cost["sampling"] += spent
-            warnings.extend(sampled[k].warnings[before:])
-    timings["sampling"] = time.perf_counter() - t0
-
-    # ---- optional replica exchange production (replaces the per-window production samples)
-    exchange_info: dict[str, Any] = {}
-    if exchange:
-        t0 = time.perf_counter()
-        if count < 2:
-            raise ValueError("exchange needs at least two windows")
-        starts = np.stack([s.samples[np.arange(chains) % len(s.samples)] for s in sampled])
-        stride = max(1, int(math.ceil(np.median([s.autocorrelation_time for s in sampled]))))
-        steps_per_sweep = max(exchange_every, 1)
-        # keep positions every ceil(τ/steps_per_sweep) sweeps so kept samples stay decorrelated
-        keep_every = max(1, int(math.ceil(stride / steps_per_sweep)))
-        sweep_cost = chains * per_call * (count * (steps_per_sweep + 1) + 2 * (count - 1))
-        left = budget - cost["sampling"]
-        per_kept_sweep = keep_every * sweep_cost + chains * count * analysis_per_sample
-        kept_sweeps = int(np.clip(left // per_kept_sweep, 4, max(4, math.ceil(sample_cap / chains))))
-        sweeps = kept_sweeps * keep_every
-        samples_per_window = kept_sweeps * chains
-        trace, swap_prob, step_acc = _exchange_jit(
-            path, k_exchange, jnp.asarray(starts), jnp.asarray(lams),
-            jnp.asarray([s.step_size for s in sampled]), jnp.asarray(np.stack([s.preconditioner for s in sampled])),
-            sweeps=sweeps, steps_per_sweep=steps_per_sweep)
-        trace = np.asarray(trace)[keep_every - 1::keep_every]          # (sweeps', K, C, ...)
-        kept = np.moveaxis(trace, 1, 0)                                # (K, sweeps', C, ...)
-        kept = kept.reshape((count, -1) + tuple(x_a.shape))[:, :samples_per_window]
-        for k in range(count):
-            sampled[k].samples = kept[k]
-        swap_prob = np.asarray(swap_prob)
-        pair_acceptance = np.nanmean(swap_prob, axis=(0, 2))
-        cost["exchange"] = int(sweeps * sweep_cost)
-        exchange_info = {"exchange_acceptance": pair_acceptance, "exchange_sweeps": sweeps,
-                         "exchange_steps_per_sweep": steps_per_sweep,
-                         "exchange_step_acceptance": np.asarray(step_acc).mean(axis=(0, 2))}
-        for k, a in enumerate(pair_acceptance):
-            if a < 0.05:
-                warnings.append(f"replica exchange between λ = {lams[k]:.4g} and λ = {lams[k + 1]:.4g} accepted only "
-                                f"{a:.1%} of swaps; the windows there are too far apart for exchange to help.")
-        timings["exchange"] = time.perf_counter() - t0
-
-    # ---- reduced energies of every sample at every window
-    t0 = time.perf_counter()
-    counts = np.array([len(s.samples) for s in sampled], dtype=np.int64)
-    pooled = np.concatenate([np.asarray(s.samples) for s in sampled])
-    reduced = _batched(_ladder_energies, path, pooled, jnp.asarray(lams)).T   # (K, N)
-    cost["analysis"] = int(pooled.shape[0] * path.evaluations_per_point(count))
-    edges = np.concatenate([[0], np.cumsum(counts)])
-    derivative = []
-    for k in range(count):
-        if derivative_free:
-            derivative.append(reduced[-1, edges[k]:edges[k + 1]] - reduced[0, edges[k]:edges[k + 1]])
-        else:
-            derivative.append(_batched(_lambda_derivatives, path, pooled[edges[k]:edges[k + 1]], jnp.asarray(lams[k])))
-    if not derivative_free:
-        cost["analysis"] += int(pooled.shape[0] * path.evaluations_per_point(1))
-    timings["energies"] = time.perf_counter() - t0
-
-    # ---- estimators
-    t0 = time.perf_counter()
-    flagged = flagged_budget
-    finite = np.isfinite(reduced) | (reduced == np.inf)
-    if not np.all(finite):
-        reduced = np.where(np.isnan(reduced) | (reduced == -np.inf), np.inf, reduced)
-        warnings.append(f"{int((~finite).sum())} reduced energies were NaN or −inf and were treated as impossible "
-                        "configurations (+inf).")
-        flagged = True
-    multistate = mbar(reduced, counts)
-    estimates: dict[str, Estimate] = {"mbar": multistate.endpoint}
-    estimates["bar_ladder"] = neighbour_bar(reduced, counts)
-    inefficiency = [_statistical_inefficiency(d, s.chains - s.stuck_chains) for d, s in zip(derivative, sampled)]
-    with np.errstate(invalid="ignore"):   # an infinite ∂u/∂λ (a forbidden region) gives inf/NaN here: TI then does not apply
-        means = np.array([float(np.mean(d)) for d in derivative])
-        errors = np.array([float(np.std(d, ddof=1) * math.sqrt(g / d.size)) for d, g in zip(derivative, inefficiency)])
-    estimates.update(_integration_estimates(lams, means, errors, gl_weights is not None, warnings))
-    msgs, inserts, neighbour_overlap = _overlap_warnings(lams, multistate.overlap)
-    warnings.extend(msgs)
-    if msgs:
-        flagged = True
-    if "warning" in multistate.endpoint.details:
-        warnings.append("MBAR: " + multistate.endpoint.details["warning"])
-        flagged = True
-    if max(inefficiency) > 2.0:
-        worst = int(np.argmax(inefficiency))
-        warnings.append(f"window λ = {lams[worst]:.4g}: kept samples are still correlated (∂u/∂λ autocorrelation "
-                        f"{inefficiency[worst]:.1f} samples); TI errors are widened for it, MBAR/BAR errors may be "
-                        "too small.")
-    forbidden = sum(s.forbidden_proposals for s in sampled)
-    if forbidden:
-        warnings.extend(nonfinite_warnings("window sampling", 0, forbidden))
-    if not all(s.equilibrated for s in sampled) or any(s.nan_proposals for s in sampled):
-        flagged = True
-    if multistate.endpoint.is_finite:
-        headline, reason = "mbar", ("MBAR uses the samples of every window at once and is the minimum-variance "
-                                    f"estimator for them (smallest neighbour overlap {min(neighbour_overlap):.2f})")
-    else:
-        headline, reason = "bar_ladder", "MBAR did not give a finite answer; BAR between neighbouring windows shown"
-    head = estimates[headline]
-    for name, est in estimates.items():
-        if name != headline and est.is_finite and head.is_finite:
-            scale = math.hypot(est.stderr, head.stderr)
-            if scale > 0 and abs(est.delta_f - head.delta_f) > 4 * scale:
-                warnings.append(f"{name} ({est.delta_f:.3f} kT) differs from {headline} ({head.delta_f:.3f} kT) by "
-                                f"{abs(est.delta_f - head.delta_f) / scale:.1f} combined errors; for TI this "
-                                "usually means the λ grid is too coarse where ∂u/∂λ changes fast.")
-    timings["estimators"] = time.perf_counter() - t0
-    timings["total"] = time.perf_counter() - t_start
-
-    window_diagnostics = [{"lambda": float(l), **s.diagnostics(), "samples": int(len(s.samples)),
-                           "derivative_inefficiency": float(g)} for l, s, g in zip(lams, sampled, inefficiency)]
-    diagnostics = {
-        "sampling_a": sampled[0].diagnostics(), "sampling_b": sampled[-1].diagnostics(),
-        "windows": window_diagnostics, "neighbour_overlap": neighbour_overlap,
-        "smallest_neighbour_overlap": float(min(neighbour_overlap)),
-        "stuck_chains": int(sum(s.stuck_chains for s in sampled)),
-        "mbar_converged": bool(multistate.converged),
-    }
-    settings = {
-        "route": "windows", "windows": int(count), "spacing": spacing if not isinstance(windows, (list, np.ndarray)) else "explicit",
-        "samples_per_window": int(samples_per_window), "chains": int(chains), "budget": int(budget), "seed": seed,
-        "exchange": bool(exchange), "window_starts": window_starts, "path": path.description(),
-    }
-    extras = {
-        "lambdas": lams, "free_energies": multistate.free_energies, "overlap": multistate.overlap,
-        "mean_derivative": means, "stderr_derivative": errors, "suggested_windows": inserts, **exchange_info,
-    }
-    return Result(
-        delta_f=head.delta_f * kT, stderr=head.stderr * kT, estimator=headline, choice_reason=reason,
-        estimates={k: v.scaled(kT) for k, v in estimates.items()},
-        work_forward=np.zeros(0), work_reverse=np.zeros(0),
-        energy_evaluations=int(sum(cost.values())), cost=cost, kT=kT, units=units,
-        diagnostics=diagnostics, warnings=warnings, flagged=bool(flagged), settings=settings,
-        timings=timings, reference=reference, extras=extras,
-    )
+    return estimate(energy_a, energy_b, start_a, start_b, kT=kT, seed=seed, method="windows", **options)

@@ -90,9 +90,9 @@ def plan_protocol(points: list[PilotPoint], *, remaining: int, per_point: int, a
     """Choose K, s and T for the remaining budget (user-fixed values are kept).
 
     T is what ``remaining`` pays for in both directions, batch padding included (see
-    :func:`fe_tool.budget.affordable_trajectories`). Plans with at least
+    :func:`fe_tool.routes.budget.affordable_trajectories`). Plans with at least
     :data:`PREFERRED_TRAJECTORIES` per direction are preferred; when none exists, plans with at
-    least :data:`fe_tool.budget.MIN_TRAJECTORIES` are considered.
+    least :data:`fe_tool.routes.budget.MIN_TRAJECTORIES` are considered.
     """
     model = fit_dissipation(points)
     stable = [p for p in points if p.diverged == 0]

@@ -38,7 +38,7 @@ class RouteCall:
 
 def _switching_with(control: str, option_key: str) -> Callable[[RouteCall], tuple[float, float, int]]:
     def route(call: RouteCall) -> tuple[float, float, int]:
-        from .workflow import estimate
+        from ..workflow import estimate
 
         options = {"control": control, **call.options.get(option_key, {})}
         r = estimate(call.energy_a, call.energy_b, call.start_a, call.start_b, kT=call.kT, seed=call.seed,

@@ -20,6 +20,8 @@ from __future__ import annotations
 
 import dataclasses
 
+from ..switching import padded_trajectories
+
 MIN_TRAJECTORIES = 20          # per direction; fewer make BAR's error bar itself unreliable (common practice)
 SAMPLING_SHARE = 0.3           # of the budget, at most, for each end state
 PILOT_SHARE = 0.15             # of the budget, at most, for all pilot switching
@@ -123,18 +125,6 @@ def plan_switching_budget(budget: int | None, *, per_point: int, end_evaluations
         raise _too_small(budget, max(needed, int(sampling_min / SAMPLING_SHARE) + 1), parts)
     return SwitchingBudget(int(budget), n_chains, sampling_cap, pilot_n, scales, schedule_pilot, pilot_cap,
                            minimum_switching)
-
-
-def padded_trajectories(trajectories: int, batch: int) -> tuple[int, int]:
-    """``(batch size, trajectories computed)`` for running ``trajectories`` in equal batches of at most ``batch``.
-
-    Batches are made as equal as possible so the padding of the last one (computed, counted,
-    then dropped) is below the number of batches.
-    """
-    trajectories = int(trajectories)
-    batches = -(-trajectories // max(1, int(batch)))
-    size = -(-trajectories // batches)
-    return size, size * batches
 
 
 def affordable_trajectories(evaluations: int, steps: int, per_point: int, batch: int, available: int) -> int:

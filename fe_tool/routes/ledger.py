@@ -1,0 +1,18 @@
+"""What a run has spent and found so far, shared by the routes' stages."""
+from __future__ import annotations
+
+import dataclasses
+
+
+@dataclasses.dataclass
+class Ledger:
+    """Cost per stage (energy evaluations), warnings, the flag and wall-clock timings of one run."""
+
+    cost: dict[str, int] = dataclasses.field(default_factory=dict)
+    warnings: list[str] = dataclasses.field(default_factory=list)
+    timings: dict[str, float] = dataclasses.field(default_factory=dict)
+    flagged: bool = False
+
+    @property
+    def spent(self) -> int:
+        return int(sum(self.cost.values()))
