@@ -10,7 +10,7 @@ import os
 import sys
 from typing import Any
 
-__all__ = ["progress_enabled", "progress_bar"]
+__all__ = ["EvaluationMeter", "progress_enabled", "progress_bar"]
 
 
 def progress_enabled(enabled: bool | None = None) -> bool:
@@ -44,3 +44,24 @@ def progress_bar(total: int | None = None, description: str = "", *, enabled: bo
     options.setdefault("dynamic_ncols", True)
     return tqdm(total=total, desc=description, unit=unit, disable=not progress_enabled(enabled),
                 file=sys.stderr, **options)
+
+
+class EvaluationMeter:
+    """One bar over a whole run, counted in energy evaluations, moved by every stage as it spends.
+
+    Stages call :meth:`add` after each block of sampler steps, pilot run, training check or
+    switching batch, so the bar moves inside long stages and its time estimate means something;
+    :meth:`stage` names what is running. Silent under the same rules as :func:`progress_bar`.
+    """
+
+    def __init__(self, total: int | None, description: str, *, enabled: bool | None = None):
+        self._bar = progress_bar(total, description, enabled=enabled, unit="eval", unit_scale=True, leave=False)
+
+    def stage(self, name: str) -> None:
+        self._bar.set_postfix_str(name, refresh=False)
+
+    def add(self, evaluations: int) -> None:
+        self._bar.update(int(evaluations))
+
+    def close(self) -> None:
+        self._bar.close()

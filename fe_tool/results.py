@@ -16,6 +16,16 @@ CAUTION = (
 )
 
 
+ERROR_KINDS = {
+    "asymptotic": "asymptotic formula",
+    "bootstrap": "bootstrap",
+    "bias-aware": "bias-aware model",
+    "chain-jackknife": "jackknife over chains",
+    "not applicable": "not applicable",
+}
+"""How each estimator's error bar was computed, in words for the summary table."""
+
+
 @dataclasses.dataclass
 class Result:
     """ΔF = F_B − F_A with its uncertainty and everything needed to judge it.
@@ -107,34 +117,69 @@ class Result:
 
     # ------------------------------------------------------------------ text
     def summary(self) -> str:
+        """The plain-text summary: headline, reference check, every estimator, diagnostics, cost, caution."""
+        lines = [self._headline_line(), f"headline estimator: {self.estimator} — {self.choice_reason}"]
+        if self.reference is not None:
+            lines.append(self._reference_line())
+        lines.append("")
+        lines.extend(self._estimator_table())
+        lines.append("")
+        lines.extend(self._run_lines())
+        lines.append("")
+        if self.warnings:
+            lines.append("warnings:" + ("  (result FLAGGED: do not trust the headline)" if self.flagged else
+                                        "  (information; the result is not flagged)"))
+            lines.extend(f"  - {w}" for w in self.warnings)
+        else:
+            lines.append("warnings: none")
+        lines.append("")
+        lines.append(CAUTION)
+        return "\n".join(lines)
+
+    def _headline_line(self) -> str:
         u = self.units
         headline = f"ΔF = F_B − F_A = {self.delta_f:.4f} ± {self.stderr:.4f} {u}"
         if u != "kT":
             headline += f"   ({self.delta_f / self.kT:.4f} ± {self.stderr / self.kT:.4f} kT, kT = {self.kT:.6g} {u})"
-        lines = [
-            headline,
-            f"headline estimator: {self.estimator} — {self.choice_reason}",
-        ]
-        if self.reference is not None:
-            ref = self.reference
-            diff = self.delta_f - ref["delta_f"]
-            lines.append(f"reference: {ref['delta_f']:.4f} {u} ({ref.get('source', 'no source given')}); "
-                         f"difference {diff:+.4f} {u}, tolerance {ref.get('tolerance', float('nan')):.4f}")
-        lines.append("")
-        lines.append(f"  {'estimator':<20s} {'ΔF':>12s} {'stderr':>10s}  error")
+        return headline
+
+    def _reference_line(self) -> str:
+        u, ref = self.units, self.reference
+        diff = self.delta_f - ref["delta_f"]
+        tolerance = ref.get("tolerance", float("nan"))
+        allowed = max(tolerance, 4.0 * self.stderr) if tolerance == tolerance else 4.0 * self.stderr
+        verdict = "pass" if abs(diff) <= allowed else "FAIL"
+        return (f"reference: {ref['delta_f']:.4f} {u} ({ref.get('source', 'no source given')}); difference "
+                f"{diff:+.4f} {u}; allowed max(tolerance {tolerance:.4f} {u}, 4σ = {4 * self.stderr:.4f} {u}): {verdict}")
+
+    def _estimator_table(self) -> list[str]:
+        lines = [f"  {'estimator':<20s} {'ΔF':>12s} {'stderr':>10s}  {'error bar from':<22s} trusted"]
         for name, est in self.estimates.items():
-            lines.append(f"  {name:<20s} {est.delta_f:12.4f} {est.stderr:10.4f}  {est.error_kind}")
-        lines.append("")
-        wf, wr = self.work_forward, self.work_reverse
-        for label, w in (("forward A→B", wf), ("reverse B→A", wr)):
+            if name == "crooks_gaussian" and est.is_finite:
+                lines.append(f"  {name:<20s} {est.delta_f:12.4f} {est.stderr:10.4f}  "
+                             f"{ERROR_KINDS.get(est.error_kind, est.error_kind):<22s} if the works are Gaussian")
+                continue
+            trusted = "yes" if (est.is_finite and est.details.get("reliable", True)) else \
+                ("no: " + est.details.get("unreliable_reason", "no finite error bar")[:60] + "…"
+                 if est.details.get("unreliable_reason") else "no: no finite error bar")
+            stderr = f"{est.stderr:10.4f}" if est.stderr == est.stderr and est.stderr != float("inf") else f"{'—':>10s}"
+            lines.append(f"  {name:<20s} {est.delta_f:12.4f} {stderr}  {ERROR_KINDS.get(est.error_kind, est.error_kind):<22s} "
+                         f"{trusted}")
+        lines.append(f"  (ΔF and stderr in {self.units})")
+        return lines
+
+    def _run_lines(self) -> list[str]:
+        lines = []
+        for label, w in (("forward A→B", self.work_forward), ("reverse B→A", self.work_reverse)):
             finite = w[np.isfinite(w)]
-            if w.size:
+            if w.size and finite.size:
                 lines.append(f"  work {label}: {w.size} trajectories, mean {np.mean(finite):.3f} kT, "
-                             f"spread {np.std(finite):.3f} kT, diverged {w.size - finite.size}")
+                             f"spread {np.std(finite):.3f} kT, diverged {int(np.sum(np.isnan(w) | (w == -np.inf)))}, "
+                             f"+inf (zero weight) {int(np.sum(w == np.inf))}")
         sw = self.settings
         if "switching_steps" in sw:
             lines.append(f"  switching: {sw.get('switching_steps')} steps, schedule {sw.get('schedule')}, "
-                         f"control {sw.get('control', 'none')}")
+                         f"control {self._control_words()}")
         for end in ("a", "b"):
             d = self.diagnostics.get(f"sampling_{end}")
             if d:
@@ -145,18 +190,29 @@ class Result:
         if "control_decision" in self.extras:
             lines.append(f"  control: {self.extras['control_decision']}")
         cost = ", ".join(f"{k} {v:,}" for k, v in self.cost.items() if v)
-        lines.append(f"  cost: {self.energy_evaluations:,} energy evaluations ({cost})")
+        budget = sw.get("budget")
+        share = f" of the budget {budget:,}" if isinstance(budget, int) and budget else ""
+        lines.append(f"  cost: {self.energy_evaluations:,} energy evaluations{share} ({cost})")
         if self.timings:
             lines.append(f"  time: {self.timings.get('total', sum(self.timings.values())):.1f} s")
-        lines.append("")
-        if self.warnings:
-            lines.append("warnings:" + ("  (result FLAGGED)" if self.flagged else ""))
-            lines.extend(f"  - {w}" for w in self.warnings)
-        else:
-            lines.append("warnings: none")
-        lines.append("")
-        lines.append(CAUTION)
-        return "\n".join(lines)
+        return lines
+
+    def _control_words(self) -> str:
+        """What control the switching ran with, e.g. "none (auto: trained, then dropped)"."""
+        asked = self.settings.get("control", "none")
+        report = self.extras.get("control") or {}
+        if asked == "none":
+            return "none"
+        kept = bool(report.get("kept")) and report.get("control") is not None
+        used = "learned drift" if kept else ("learned protocol" if report.get("kept") else "none")
+        if asked == "auto":
+            trained = report.get("training_evaluations", 0) > 0
+            what = ("trained and kept" if report.get("kept") else "trained, then dropped") if trained else "not trained"
+            budget = self.settings.get("budget")
+            cost = report.get("training_evaluations", 0)
+            spent = f", training {cost:,} evaluations = {cost / budget:.1%} of the budget" if trained and budget else ""
+            return f"{used} (auto: {what}{spent})"
+        return f"{used} ({asked})"
 
     def __str__(self) -> str:
         return self.summary()

@@ -424,6 +424,7 @@ def sample_state(
     name: str = "end state",
     initial_step_size: float | None = None,
     starts: Configuration | None = None,
+    on_spent=None,
 ) -> StateSamples:
     """Draw ``samples`` equilibrium configurations of ``target`` starting from ``start``.
 
@@ -443,6 +444,7 @@ def sample_state(
             (shape (d,)) and off for particle coordinates (periodic wrapping makes
             coordinate variances meaningless there).
         name: used in warnings.
+        on_spent: optional callback ``on_spent(evaluations)`` after each block (progress meters).
     """
     start = jnp.asarray(start)
     if precondition is None:
@@ -487,6 +489,8 @@ def sample_state(
         spent += block_cost(observe_every)
         derivative_spent += block_cost(observe_every) - block_cost(0)
         nonfinite += np.asarray(out.nonfinite, dtype=np.int64)
+        if on_spent is not None:
+            on_spent(block_cost(observe_every))
         return out[:7]
 
     # ---- warm-up: step size (and preconditioner, in doubling windows)
@@ -581,6 +585,8 @@ def sample_state(
         states, _, _, acc, _, pos, _ = out[:7]
         nonfinite += np.asarray(out.nonfinite, dtype=np.int64)
         spent += chains * stride * per_chain * per_call
+        if on_spent is not None:
+            on_spent(chains * stride * per_chain * per_call)
         pos = np.asarray(pos)
         acceptance = float(np.mean(np.asarray(acc)[healthy]))
     else:  # nothing left to spend: the chains' current positions are the samples

@@ -187,12 +187,13 @@ def switching_evaluations_padded(path: Path, trajectories: int, steps: int, batc
 
 
 def run_in_batches(path, control, key, starts, lams, step_sizes, precision_a, precision_b, direction,
-                   batch: int = 256):
+                   batch: int = 256, on_spent=None):
     """:func:`switch_jit` over ``starts`` in fixed-size batches (bounded memory, one compilation).
 
     Batches are as equal as possible (:func:`padded_trajectories`); the last one
     is padded with copies of its first start and the padding dropped, so fewer trajectories than
-    batches are wasted (:func:`switching_evaluations_padded` counts them).
+    batches are wasted (:func:`switching_evaluations_padded` counts them). ``on_spent(evaluations)``
+    is called after each batch (progress meters).
     Returns numpy float64 works (T,), increments (T, K) and final positions.
     """
 
@@ -212,6 +213,8 @@ def run_in_batches(path, control, key, starts, lams, step_sizes, precision_a, pr
         w, inc, fin = switch_jit(path, control, k, chunk, jnp.asarray(lams), jnp.asarray(step_sizes),
                                  precision_a, precision_b, sign)
         works.append(np.asarray(w[:n], dtype=np.float64))
+        if on_spent is not None:
+            on_spent(switching_evaluations(path, batch, len(lams) - 1))
         incs.append(np.asarray(inc[:n], dtype=np.float64))
         finals.append(np.asarray(fin[:n]))
     return np.concatenate(works), np.concatenate(incs), np.concatenate(finals)

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import dataclasses
+from typing import Any
 
 
 @dataclasses.dataclass
@@ -12,6 +13,12 @@ class Ledger:
     warnings: list[str] = dataclasses.field(default_factory=list)
     timings: dict[str, float] = dataclasses.field(default_factory=dict)
     flagged: bool = False
+    meter: Any = None   # a fe_tool.progress.EvaluationMeter, or None
+
+    def spend(self, evaluations: int) -> None:
+        """Move the progress meter (the cost itself is booked per stage in ``cost``)."""
+        if self.meter is not None:
+            self.meter.add(evaluations)
 
     @property
     def spent(self) -> int:

@@ -21,7 +21,7 @@ from ..estimators.grouped import with_grouped_error
 from ..estimators.spread import robust_spread
 from ..options import CONTROL_MODES, Options
 from ..path import make_schedule
-from ..progress import progress_bar, progress_enabled
+from ..progress import EvaluationMeter, progress_enabled
 from ..results import Result
 from ..sampling import StateSamples, end_target, nonfinite_warnings, sample_state
 from ..switching import run_in_batches, switching_evaluations_padded
@@ -140,7 +140,7 @@ def _switching_step_sizes(lams: np.ndarray, samples_a: StateSamples, samples_b: 
 
 
 def _schedule_pilot(path, key, samples_a, samples_b, precision_a, precision_b, cost, scales, trajectories=64,
-                    tries: int = 2):
+                    tries: int = 2, on_spent=None):
     """Pilot on the linear schedule; return (λ grid, normalised length profile) for an adaptive schedule."""
     lams0 = make_schedule("linear", PILOT_STEPS)
     n = min(trajectories, len(samples_a.samples), len(samples_b.samples))
@@ -149,8 +149,10 @@ def _schedule_pilot(path, key, samples_a, samples_b, precision_a, precision_b, c
     for scale in ([s for s in scales if s <= 0.5] or list(scales))[:tries]:
         eps0 = _switching_step_sizes(lams0, samples_a, samples_b, scale)
         kf, kr, key = jax.random.split(key, 3)
-        wf, inc_f, _ = run_in_batches(path, None, kf, samples_a.samples[:n], lams0, eps0, precision_a, precision_b, "forward", n)
-        wr, inc_r, _ = run_in_batches(path, None, kr, samples_b.samples[:n], lams0, eps0, precision_a, precision_b, "reverse", n)
+        wf, inc_f, _ = run_in_batches(path, None, kf, samples_a.samples[:n], lams0, eps0, precision_a, precision_b,
+                                      "forward", n, on_spent)
+        wr, inc_r, _ = run_in_batches(path, None, kr, samples_b.samples[:n], lams0, eps0, precision_a, precision_b,
+                                      "reverse", n, on_spent)
         cost["pilot"] += 2 * switching_evaluations_padded(path, n, PILOT_STEPS, n)
         # trajectories whose every step is finite (one that crosses a forbidden region has ∞ − ∞ steps)
         ok_f, ok_r = np.isfinite(inc_f).all(axis=1), np.isfinite(inc_r).all(axis=1)
@@ -164,7 +166,7 @@ def _schedule_pilot(path, key, samples_a, samples_b, precision_a, precision_b, c
 
 
 def step_scale_pilot(path, key, samples_a, samples_b, precision_a, precision_b, lams, scales, cost,
-                     trajectories: int = 64) -> list[PilotPoint]:
+                     trajectories: int = 64, on_spent=None) -> list[PilotPoint]:
     """Uncontrolled pilot switching on ``lams`` at each step scale; the points the protocol planner fits.
 
     Adds the pilot's evaluations to ``cost["pilot"]``.
@@ -175,8 +177,10 @@ def step_scale_pilot(path, key, samples_a, samples_b, precision_a, precision_b, 
     for scale in scales:
         eps = _switching_step_sizes(lams, samples_a, samples_b, scale)
         kf, kr, key = jax.random.split(key, 3)
-        wf, _, _ = run_in_batches(path, None, kf, samples_a.samples[:n], lams, eps, precision_a, precision_b, "forward", n)
-        wr, _, _ = run_in_batches(path, None, kr, samples_b.samples[:n], lams, eps, precision_a, precision_b, "reverse", n)
+        wf, _, _ = run_in_batches(path, None, kf, samples_a.samples[:n], lams, eps, precision_a, precision_b,
+                                  "forward", n, on_spent)
+        wr, _, _ = run_in_batches(path, None, kr, samples_b.samples[:n], lams, eps, precision_a, precision_b,
+                                  "reverse", n, on_spent)
         cost["pilot"] += 2 * switching_evaluations_padded(path, n, steps, n)
         bad_f, bad_r = mark_diverged(wf), mark_diverged(wr)
         ok_f, ok_r = wf[~bad_f], wr[~bad_r]
@@ -198,7 +202,7 @@ def _sample_ends(keys, path, x_a, x_b, starts, opts: Options, plan: SwitchingBud
     for end, k_end, x0 in (("a", keys[0], x_a), ("b", keys[1], x_b)):
         s = sample_state(k_end, end_target(path, end), x0, samples=samples_wanted, chains=plan.chains,
                          evaluation_budget=int(plan.sampling_cap), precondition=opts.precondition,
-                         name=f"end state {end.upper()}", starts=starts[end])
+                         name=f"end state {end.upper()}", starts=starts[end], on_spent=ledger.spend)
         sampled[end] = s
         ledger.cost[f"sampling_{end}"] = s.evaluations
         ledger.warnings.extend(s.warnings)
@@ -223,12 +227,12 @@ def _pilot_and_plan(key, path, sampled, precision, opts: Options, budget: int | 
     if isinstance(opts.schedule, str) and opts.schedule == "adaptive":
         profile_lams, profile = _schedule_pilot(path, k_shape, samples_a, samples_b, *precision, ledger.cost,
                                                 plan.pilot_scales or (opts.step_scale or 0.4,),
-                                                plan.pilot_trajectories or 64)
+                                                plan.pilot_trajectories or 64, on_spent=ledger.spend)
         schedule_for = (lambda k: schedule_from_profile(profile_lams, profile, k))
     if plan.pilot_scales:
         points.extend(step_scale_pilot(path, k_pilot, samples_a, samples_b, *precision,
                                        schedule_for(PILOT_STEPS), plan.pilot_scales, ledger.cost,
-                                       plan.pilot_trajectories))
+                                       plan.pilot_trajectories, on_spent=ledger.spend))
     remaining = (budget - ledger.spent) if budget is not None else 10**15
     available = min(len(samples_a.samples), len(samples_b.samples))
     per_point = path.evaluations_per_point(1)
@@ -293,6 +297,7 @@ def _control_stage(key, path, sampled, precision, opts: Options, lams, step_size
     drift, lams, step_sizes, report, trained = _prepare_control(
         opts, key, path, sampled["a"], sampled["b"], lams, step_sizes, *precision, int(spendable), x_a)
     ledger.cost["training"] = int(report["training_evaluations"])
+    ledger.spend(ledger.cost["training"])
     if report["training_evaluations"] == 0 and not report.get("decision", "").startswith("No control"):
         report["decision"] = ("No control trained: " + report.get("decision", "")).strip()
     if opts.save_control and trained is not None:
@@ -319,9 +324,9 @@ def _switch_stage(keys, path, drift, sampled, precision, lams, step_sizes, traje
     t0 = time.perf_counter()
     steps = len(lams) - 1
     forward, inc_forward, _ = run_in_batches(path, drift, keys[0], sampled["a"].samples[:trajectories], lams,
-                                             step_sizes, *precision, "forward", SWITCH_BATCH)
+                                             step_sizes, *precision, "forward", SWITCH_BATCH, ledger.spend)
     reverse, _, _ = run_in_batches(path, drift, keys[1], sampled["b"].samples[:trajectories], lams,
-                                   step_sizes, *precision, "reverse", SWITCH_BATCH)
+                                   step_sizes, *precision, "reverse", SWITCH_BATCH, ledger.spend)
     ledger.cost["switching"] = 2 * switching_evaluations_padded(path, trajectories, steps, SWITCH_BATCH)
     ledger.timings["switching"] = time.perf_counter() - t0
     return forward, reverse, inc_forward
@@ -411,28 +416,25 @@ def run_switching(path, x_a, x_b, kT: float, seed: int, starts, opts: Options, b
     samples_wanted = opts.trajectories or int(np.clip((budget or DEFAULT_BUDGET) // 400, 64, 2048))
     k_sample_a, k_sample_b, k_pilot, k_forward, k_reverse, k_control = jax.random.split(jax.random.key(seed), 6)
     ledger = Ledger()
-    stages = progress_bar(5, "ΔF by switching", enabled=opts.progress, unit="stage", leave=False)
-    stages.set_postfix_str("sampling the end states")
+    meter = EvaluationMeter(budget, "ΔF by switching", enabled=opts.progress)
+    ledger.meter = meter
+    meter.stage("sampling the end states")
     sampled = _sample_ends((k_sample_a, k_sample_b), path, x_a, x_b, starts, opts, plan, samples_wanted, ledger)
     precision = (jnp.asarray(1.0 / sampled["a"].preconditioner), jnp.asarray(1.0 / sampled["b"].preconditioner))
-    stages.update(1)
-    stages.set_postfix_str("pilot switching")
+    meter.stage("pilot switching")
     protocol, lams, step_sizes, points = _pilot_and_plan(k_pilot, path, sampled, precision, opts, budget, plan, ledger)
-    stages.update(1)
-    stages.set_postfix_str("control")
+    meter.stage("control")
     drift, lams, step_sizes, control_report = _control_stage(k_control, path, sampled, precision, opts, lams,
                                                              step_sizes, budget, plan, kT, x_a, ledger)
     available = min(len(sampled["a"].samples), len(sampled["b"].samples))
     trajectories = _production_size(protocol.trajectories, opts, budget, len(lams) - 1, per_point, available, ledger)
     _check_enough(trajectories, opts, ledger)
-    stages.update(1)
-    stages.set_postfix_str(f"switching {trajectories} trajectories × {len(lams) - 1} steps, both ways")
+    meter.stage(f"switching {trajectories} trajectories × {len(lams) - 1} steps, both ways")
     forward, reverse, inc_forward = _switch_stage((k_forward, k_reverse), path, drift, sampled, precision, lams,
                                                   step_sizes, trajectories, ledger)
-    stages.update(1)
+    meter.stage("estimators")
     found = _estimate_stage(forward, reverse, sampled, seed, ledger)
-    stages.update(1)
-    stages.close()
+    meter.close()
     ledger.timings["total"] = time.perf_counter() - t_start
     return _report(path, opts, kT, seed, budget, plan, sampled, protocol, points, lams, step_sizes,
                    (forward, reverse), inc_forward, control_report, *found, ledger)

@@ -50,6 +50,7 @@ from ..sampling import (
     window_target,
 )
 from ..options import InputError, Options
+from ..progress import EvaluationMeter
 from .ledger import Ledger
 
 DEFAULT_WINDOWS = 10             # with a budget: at most this many (see _default_window_count)
@@ -390,7 +391,7 @@ def _sample_windows(key, path, plan: WindowsPlan, x_a, x_b, starts, window_start
         start_set = (starts["a"] if lams[k] < 0.5 else starts["b"]) if from_end else None
         s = sample_state(window_keys[k], window_target(path, float(lams[k])), x0, samples=plan.chains,
                          chains=plan.chains, evaluation_budget=plan.equilibration_share,
-                         name=f"window {k} (λ = {lams[k]:.4g})", starts=start_set)
+                         name=f"window {k} (λ = {lams[k]:.4g})", starts=start_set, on_spent=ledger.spend)
         sampled[k] = s
         ledger.cost["sampling"] += s.evaluations
         ledger.warnings.extend(s.warnings)
@@ -412,8 +413,9 @@ def _produce_windows(key, path, plan: WindowsPlan, sampled, ledger: Ledger) -> i
     production_keys = jax.random.split(key, plan.count)
     for k in range(plan.count):
         before = len(sampled[k].warnings)
-        ledger.cost["sampling"] += _produce(production_keys[k], window_target(path, float(plan.lams[k])), sampled[k],
-                                            samples)
+        spent = _produce(production_keys[k], window_target(path, float(plan.lams[k])), sampled[k], samples)
+        ledger.cost["sampling"] += spent
+        ledger.spend(spent)
         ledger.warnings.extend(sampled[k].warnings[before:])
     return samples
 
@@ -568,7 +570,8 @@ def run_windows(path, x_a, x_b, kT: float, seed: int, starts, opts: Options, pla
                 t_start: float) -> Result:
     """Sample every window, (exchange,) score every sample at every window, estimate, report."""
     k_windows, k_production, k_exchange = jax.random.split(jax.random.key(seed), 3)
-    ledger = Ledger(cost={"sampling": 0})
+    ledger = Ledger(cost={"sampling": 0}, meter=EvaluationMeter(plan.budget, "ΔF by windows", enabled=opts.progress))
+    ledger.meter.stage(f"sampling {plan.count} windows")
     t0 = time.perf_counter()
     sampled = _sample_windows(k_windows, path, plan, x_a, x_b, starts, opts.window_starts, ledger)
     exchange_info: dict[str, Any] = {}
@@ -582,12 +585,15 @@ def run_windows(path, x_a, x_b, kT: float, seed: int, starts, opts: Options, pla
         samples = _produce_windows(k_production, path, plan, sampled, ledger)
         ledger.timings["sampling"] = time.perf_counter() - t0
     t0 = time.perf_counter()
+    ledger.meter.stage("energies of every sample at every window")
     reduced, counts, derivative = _analyse(path, plan, sampled, ledger)
+    ledger.spend(ledger.cost["analysis"])
     ledger.timings["energies"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     estimates, headline, reason, found = _estimate_windows(plan, reduced, counts, derivative, sampled, ledger)
     ledger.timings["estimators"] = time.perf_counter() - t0
     ledger.timings["total"] = time.perf_counter() - t_start
+    ledger.meter.close()
     return _report_windows(path, opts, plan, kT, seed, sampled, samples, estimates, headline, reason, found,
                            exchange_info, ledger)
 
