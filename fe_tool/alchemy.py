@@ -139,10 +139,11 @@ class ParameterInterpolationPath(Path):
         self.box = None if box is None else jnp.asarray(box, dtype=jnp.result_type(float))
         self.kT = float(kT)
 
-    def _terms_energy(self, x: Configuration, lam: Array) -> Array:
+    def _terms_energy(self, x: Configuration, lam: Array, neighbours=None) -> Array:
         total = jnp.zeros((), dtype=jnp.result_type(float))
         for term in self.shared:  # a handful of terms, unrolled at trace time
-            total = total + term(x, box=self.box)
+            total = total + (term(x, box=self.box, neighbours=neighbours) if neighbours is not None
+                             else term(x, box=self.box))
         for a, b in zip(self.changed_a, self.changed_b):
             total = total + interpolate_term(a, b, lam)(x, box=self.box)
         for term in self.only_a:
@@ -151,8 +152,8 @@ class ParameterInterpolationPath(Path):
             total = total + lam * term(x, box=self.box)
         return total
 
-    def energy(self, x: Configuration, lam: Array) -> Array:
-        return self._terms_energy(x, lam) / self.kT
+    def energy(self, x: Configuration, lam: Array, neighbours=None) -> Array:
+        return self._terms_energy(x, lam, neighbours) / self.kT
 
     def end_function(self, end: str) -> Callable:
         """``U(x)`` of end ``"a"`` or ``"b"`` in energy units (for ``estimate``'s checks)."""
@@ -191,6 +192,7 @@ class SoftCoreDecouplingPath(ParameterInterpolationPath):
 
     nonbonded: Nonbonded
     neighbour_builder: NeighbourListBuilder | None
+    carried_builder: NeighbourListBuilder | None
     electrostatics_share: float = eqx.field(static=True)
     stage_form: str = eqx.field(static=True)
 
@@ -230,15 +232,21 @@ class SoftCoreDecouplingPath(ParameterInterpolationPath):
             builder = neighbour_list_builder(term.n_particles, model.box, term.cutoff, 0.0, int(neighbour_capacity),
                                              exclusions=term.exclusions, dimension=int(model.box.shape[0]))
         self.neighbour_builder = builder
+        self.carried_builder = None if builder is None else _carried_builder(term, model.box, int(neighbour_capacity))
+
+    def dynamics_neighbour_builder(self):
+        """A list with a skin of about 0.12 cutoff (common practice), carried by samplers and
+        rebuilt only when a particle has moved more than half the skin (Verlet 1967); ``None``
+        when the path searches all pairs."""
+        return self.carried_builder
 
     def couplings(self, lam: Array) -> tuple[Array, Array]:
         """``(coulomb_scale, lj_coupling)`` at λ."""
         return stage_couplings(lam, self.electrostatics_share, self.stage_form)
 
-    def energy(self, x: Configuration, lam: Array) -> Array:
+    def energy(self, x: Configuration, lam: Array, neighbours=None) -> Array:
         coulomb_scale, lj_coupling = self.couplings(lam)
-        neighbours = None
-        if self.neighbour_builder is not None:
+        if neighbours is None and self.neighbour_builder is not None:
             # pair membership is a discrete choice: no gradient flows through the build
             neighbours = self.neighbour_builder.build(jax.lax.stop_gradient(x))
         nonbonded = self.nonbonded(x, box=self.box, neighbours=neighbours, lj_coupling=lj_coupling,
@@ -252,6 +260,22 @@ class SoftCoreDecouplingPath(ParameterInterpolationPath):
         extra = super().description() if (self.changed_a or self.only_a or self.only_b) else ""
         return (f"soft-core decoupling of {count} particle(s) ({stages}, {self.stage_form} stages, "
                 f"α = {self.nonbonded.soft_core_alpha:g})" + (f"; {extra}" if extra else ""))
+
+
+SKIN_PER_CUTOFF = 0.12
+
+
+def _carried_builder(term: Nonbonded, box, capacity: int) -> NeighbourListBuilder | None:
+    """The skin list for dynamics: capacity scaled from the cutoff-only list by the volume ratio
+    (×1.2 spare; an overflow later grows it); the skin shrinks to fit half the box, or none."""
+    import numpy as np
+    dimension = int(box.shape[0])
+    skin = min(SKIN_PER_CUTOFF * term.cutoff, 0.5 * float(np.min(np.asarray(box))) - term.cutoff)
+    if skin <= 0.02 * term.cutoff:
+        return None
+    scaled = int(1.2 * capacity * ((term.cutoff + skin) / term.cutoff) ** dimension) + 64
+    return neighbour_list_builder(term.n_particles, box, term.cutoff, float(skin), scaled,
+                                  exclusions=term.exclusions, dimension=dimension)
 
 
 def _group_is_charged(term: Nonbonded) -> bool:

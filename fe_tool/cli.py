@@ -50,6 +50,9 @@ def _parser() -> argparse.ArgumentParser:
     run.add_argument("--trajectories", type=int, help="trajectories per direction")
     run.add_argument("--schedule", help="λ schedule: adaptive, linear, cosine or power")
     run.add_argument("--method", choices=["switching", "windows"], help="route: switching (default) or windows")
+    run.add_argument("--sampler", choices=["auto", "mala", "kinetic", "kinetic_exact"],
+                     help="equilibrium sampling kernel: mala (exact), kinetic (BAOAB Langevin), "
+                          "kinetic_exact (generalised HMC); auto = mala")
     run.add_argument("--control", help="switching control: none, learned, auto, or a saved control file")
     run.add_argument("--save-control", dest="save_control", metavar="FILE", help="save a trained control to FILE")
     run.add_argument("--kcal", action="store_true", help="report kJ/mol systems in kcal/mol")
@@ -109,7 +112,7 @@ def _run(args) -> int:
     system = load_system(_find(args.system), allow_outside_files=args.allow_outside_files)
     _check_outputs(args)
     overrides = {k: getattr(args, k) for k in ("seed", "budget", "switching_steps", "trajectories", "schedule",
-                                                "method", "control", "save_control")
+                                                "method", "sampler", "control", "save_control")
                  if getattr(args, k) is not None}
     if args.quiet:
         overrides["progress"] = False
@@ -145,7 +148,7 @@ def _check(args) -> int:
 
 
 def _compare(args) -> int:
-    from .comparison import ROUTES, compare_routes
+    from .routes.comparison import ROUTES, compare_routes
 
     system = load_system(_find(args.system))
     routes = tuple(r.strip() for r in args.routes.split(",") if r.strip())

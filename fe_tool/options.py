@@ -19,6 +19,7 @@ class InputError(ValueError):
 
 
 CONTROL_MODES = ("none", "learned", "auto")
+SAMPLERS = ("auto", "mala", "kinetic", "kinetic_exact")
 METHODS = ("switching", "windows")
 SCHEDULE_NAMES = ("adaptive", "linear", "cosine", "power")
 SPACINGS = ("gauss-legendre", "uniform", "linear", "cosine", "power")
@@ -48,6 +49,9 @@ class Options:
             ``None`` chooses it (with K) from pilot runs.
         chains: parallel sampling chains per end state (default: from the budget, 16 to 64).
         precondition: diagonal preconditioning (``None``: on for vector configurations).
+        sampler: equilibrium sampling kernel: ``"mala"`` (Metropolis-adjusted Langevin, exact),
+            ``"kinetic"`` (BAOAB kinetic Langevin, step held to a small shadow work),
+            ``"kinetic_exact"`` (generalised HMC, exact), or ``"auto"`` (default: MALA).
         starts_a, starts_b: optional start sets for the end-state samplers: k configurations
             stacked on a first axis, each of ``start_a``'s shape; chain i of that end's sampler
             begins at ``starts[i mod k]``. Give starts in every slow basin.
@@ -76,6 +80,7 @@ class Options:
     step_scale: float | None = None
     chains: int | None = None
     precondition: bool | None = None
+    sampler: str = "auto"
     starts_a: Any = None
     starts_b: Any = None
     path: Any = None
@@ -248,6 +253,7 @@ def check_options(options: dict) -> Options:
         exchange_every=whole_number(o.exchange_every, "exchange_every", 1, allow_none=False),
         samples_per_window=whole_number(o.samples_per_window, "samples_per_window", 16),
         window_starts=_text(o.window_starts, "window_starts", ("ends", "chain")),
+        sampler=_text(o.sampler, "sampler", SAMPLERS),
         budget=whole_number(o.budget, "budget", 1),
         switching_steps=steps,
         trajectories=whole_number(o.trajectories, "trajectories", 2),
@@ -272,3 +278,8 @@ def check_options(options: dict) -> Options:
     opts = dataclasses.replace(o, **fixed)
     _check_route_fit(opts)
     return opts
+
+
+def sampling_kernel(opts: "Options") -> str:
+    """The kernel the end-state and window samplers use: ``opts.sampler``, with ``"auto"`` → MALA."""
+    return "mala" if opts.sampler == "auto" else opts.sampler

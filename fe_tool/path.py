@@ -41,12 +41,22 @@ class Path(eqx.Module):
 
     kT: float = eqx.field(static=True)
 
-    def energy(self, x: Configuration, lam: Array) -> Array:  # pragma: no cover - abstract
+    def energy(self, x: Configuration, lam: Array, neighbours=None) -> Array:  # pragma: no cover - abstract
+        """Reduced energy u(x, λ); ``neighbours`` is a carried neighbour list for particle models
+        that use one (see :meth:`dynamics_neighbour_builder`), ignored by the others."""
         raise NotImplementedError
 
-    def energy_and_grad(self, x: Configuration, lam: Array) -> tuple[Array, Array]:
+    def energy_and_grad(self, x: Configuration, lam: Array, neighbours=None) -> tuple[Array, Array]:
         """Reduced energy u(x, λ) and its gradient with respect to x."""
-        return jax.value_and_grad(self.energy)(x, lam)
+        return jax.value_and_grad(self.energy)(x, lam, neighbours)
+
+    def dynamics_neighbour_builder(self):
+        """A neighbour-list builder with a skin for dynamics that carry a list, or ``None``.
+
+        Particle paths with a pair list return one; samplers and switching then carry the list in
+        their state and rebuild it only when some particle has moved more than half the skin.
+        """
+        return None
 
     def energies_at(self, x: Configuration, lams: Array) -> Array:
         """u(x, λ_j) for every λ_j in ``lams`` (a vector), one configuration."""
@@ -60,9 +70,9 @@ class Path(eqx.Module):
         """Energy evaluations needed for energies+gradients at ``lambda_count`` λ values on one point."""
         return int(lambda_count)
 
-    def end_energy(self, x: Configuration, end: str) -> Array:
+    def end_energy(self, x: Configuration, end: str, neighbours=None) -> Array:
         """Reduced energy of end state ``"a"`` (λ = 0) or ``"b"`` (λ = 1)."""
-        return self.energy(x, jnp.asarray(0.0 if end == "a" else 1.0))
+        return self.energy(x, jnp.asarray(0.0 if end == "a" else 1.0), neighbours)
 
     def end_evaluations(self) -> int:
         """Evaluations per point for one end state's energy and gradient."""
@@ -118,7 +128,7 @@ class LinearPath(Path):
         """(u_A(x), u_B(x)) reduced."""
         return self.energy_a(x) / self.kT, self.energy_b(x) / self.kT
 
-    def energy(self, x, lam):
+    def energy(self, x, lam, neighbours=None):
         u_a, u_b = self.end_energies(x)
         return mix_ends(u_a, u_b, lam)
 
@@ -133,7 +143,7 @@ class LinearPath(Path):
     def evaluations_per_point(self, lambda_count: int = 1) -> int:
         return 2
 
-    def end_energy(self, x, end):
+    def end_energy(self, x, end, neighbours=None):
         return (self.energy_a(x) if end == "a" else self.energy_b(x)) / self.kT
 
     def description(self) -> str:

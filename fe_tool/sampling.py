@@ -1,51 +1,47 @@
-"""Equilibrium sampling of one state on the path: preconditioned MALA with many chains.
+"""Equilibrium sampling of one state on the path: many chains of one kernel, judged for burn-in.
 
-Kernel (Metropolis-adjusted Langevin, Roberts & Tweedie 1996, Bernoulli 2, 341)
-with a constant diagonal preconditioner M and step ε, on the reduced energy u:
+The kernels (:mod:`fe_tool.kernels`: MALA, BAOAB kinetic Langevin, generalised HMC) each take
+one step of every chain; this module is the driver (:func:`sample_state`), which runs
+``chains`` chains in parallel in fixed-length blocks (one compiled ``lax.scan`` per block
+shape):
 
-    proposal  y = x − ε M ∇u(x) + √(2ε M) ξ,          ξ ~ N(0, I)
-    accept with probability  min(1, exp(−u(y) + u(x) + log q(x|y) − log q(y|x))),
-    log q(y|x) = −|y − x + ε M ∇u(x)|²_{M⁻¹} / (4ε).
+1. warm-up: the step size is adapted towards the kernel's target acceptance (MALA 0.574,
+   Roberts & Rosenthal 1998, J. R. Stat. Soc. B 60, 255; for unadjusted BAOAB the acceptance a
+   Metropolis test would have had, from its shadow work); for vector configurations a diagonal
+   preconditioner (MALA) or inverse mass (kinetic) is estimated from the chains' variance in
+   doubling windows;
+2. burn-in: blocks are run until the integrated autocorrelation time τ of the recorded
+   observables is below a tenth of the judged half of the trace and the chains agree (split
+   potential-scale reduction below 1.1, Gelman & Rubin 1992 / Vehtari et al. 2021), or the
+   budget share runs out. Watched: the reduced energy (every step), the coordinates for vector
+   systems (every 5 steps) and ∂u/∂λ of the path at the target's λ (every
+   :data:`DERIVATIVE_EVERY` steps; its cost, one path evaluation per chain per record, is
+   counted). Chains may start from a start set (round-robin); chains that begin in different
+   basins disagree in the split-R̂ check until they have mixed;
+3. production: each chain is continued and sampled every ⌈τ⌉ steps, within the budget.
 
-The driver (:func:`sample_state`) runs ``chains`` chains in parallel (vmap), in
-fixed-length blocks (one compiled ``lax.scan`` per block shape):
-
-1. warm-up: the step size is adapted towards an acceptance of 0.574, the optimum
-   for MALA (Roberts & Rosenthal 1998, J. R. Stat. Soc. B 60, 255); for vector
-   configurations a diagonal preconditioner is estimated from the chains' variance
-   in doubling windows;
-2. burn-in: blocks are run until the integrated autocorrelation time τ of the
-   recorded observables is below a tenth of the judged half of the trace and the chains
-   agree (split potential-scale reduction below 1.1, Gelman & Rubin 1992 / Vehtari et al.
-   2021), or the budget share runs out. Watched: the reduced energy (every step), the
-   coordinates for vector systems (every 5 steps) and ∂u/∂λ of the path at the target's λ
-   (every :data:`DERIVATIVE_EVERY` steps, inside the compiled block; its cost, one path
-   evaluation per chain per record, is counted). ∂u/∂λ is what the estimate depends on:
-   a slow mode that moves it (e.g. trans/gauche hops under a torsion change) can leave the
-   energy fast-decorrelating, and would otherwise pass unseen. Chains may start from a
-   start set (round-robin); chains that begin in different basins disagree in the split-R̂
-   check until they have mixed, which catches slow modes no chain has crossed yet;
-3. production: each chain is continued and sampled every ⌈τ⌉ steps, as many samples
-   as the rest of the budget affords (up to the number asked for).
-
-Chains whose acceptance collapses (stuck in a steep tail) are excluded from the
-samples, counted and reported; their cost still counts.
+Chains whose acceptance collapses (stuck in a steep tail) are excluded from the samples,
+counted and reported; their cost still counts. Particle models may carry a neighbour list
+through the chains: it is rebuilt only when some particle has moved more than half its skin,
+for all chains at once, and an overflow of its capacity is caught on the host after the
+block, the capacity grown and the block run again — never a silent wrong energy.
 """
 from __future__ import annotations
 
 import dataclasses
 import math
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 import equinox as eqx
 import jax
 import jax.numpy as jnp
 import numpy as np
 
-from .path import LinearPath, Path
+from .kernels import KERNELS, ChainState, KernelParams, StepInfo, Target, end_target, window_target  # noqa: F401
+from .kernels.kinetic import draw_momenta
+from .timeseries import autocorrelation_time, split_mixing_statistic
 from .types import Array, Configuration
 
-TARGET_ACCEPTANCE = 0.574
 BLOCK_STEPS = 50
 STUCK_ACCEPTANCE = 0.02
 EQUILIBRATION_TAUS = 10  # the judged second half of the burn-in must span this many autocorrelation times
@@ -53,94 +49,7 @@ MIXING_LIMIT = 1.1  # split potential-scale reduction below which chains agree (
 BURN_IN_SHARE = 0.7  # of a call's budget; production sampling gets the rest
 MIN_SAMPLES = 64
 DERIVATIVE_EVERY = 10  # burn-in records ∂u/∂λ every this many steps (cost: one path evaluation per chain each time)
-
-
-class ChainState(NamedTuple):
-    position: Array
-    energy: Array
-    grad: Array
-
-
-class StepInfo(NamedTuple):
-    acceptance: Array  # Metropolis acceptance probability of this step
-    energy: Array
-    proposal_nan: Array  # the proposal's energy was NaN (an error in the energy function)
-    proposal_forbidden: Array  # the proposal's energy was +inf (a forbidden region; rejected)
-
-
-class Target(eqx.Module):
-    """The reduced energy of one state of a path: an end (``end="a"|"b"``) or λ (``end=None``)."""
-
-    path: Path
-    lam: Array
-    end: str | None = eqx.field(static=True)
-
-    def energy(self, x: Configuration) -> Array:
-        if self.end is not None:
-            return self.path.end_energy(x, self.end)
-        return self.path.energy(x, self.lam)
-
-    def energy_and_grad(self, x: Configuration) -> tuple[Array, Array]:
-        return jax.value_and_grad(self.energy)(x)
-
-    def evaluations(self) -> int:
-        """Energy evaluations per energy-and-gradient call."""
-        return self.path.end_evaluations() if self.end is not None else self.path.evaluations_per_point(1)
-
-    def _linear_end(self) -> bool:
-        return self.end is not None and isinstance(self.path, LinearPath)
-
-    def lambda_derivative(self, x: Configuration, u_x: Array) -> Array:
-        """∂u/∂λ of the path at this target's λ, at ``x`` whose reduced energy here is ``u_x``.
-
-        The integrand of thermodynamic integration, and the observable that ΔF depends on.
-        At an end of the linear path it is u_B − u_A, which needs only the other end's
-        energy; otherwise one forward-mode derivative of ``path.energy`` in λ.
-        """
-        if self._linear_end():
-            other = self.path.end_energy(x, "b" if self.end == "a" else "a")
-            return other - u_x if self.end == "a" else u_x - other
-        lam = jnp.asarray(self.lam, dtype=jnp.result_type(float))
-        return jax.jvp(lambda l: self.path.energy(x, l), (lam,), (jnp.ones_like(lam),))[1]
-
-    def derivative_evaluations(self) -> int:
-        """Energy evaluations counted per :meth:`lambda_derivative` call."""
-        return self.path.end_evaluations() if self._linear_end() else self.path.evaluations_per_point(1)
-
-
-def end_target(path: Path, end: str) -> Target:
-    return Target(path, jnp.asarray(0.0 if end == "a" else 1.0), end)
-
-
-def window_target(path: Path, lam: float) -> Target:
-    return Target(path, jnp.asarray(lam, dtype=jnp.float64), None)
-
-
-def init_state(target: Target, position: Configuration) -> ChainState:
-    energy, grad = target.energy_and_grad(position)
-    return ChainState(position, energy, grad)
-
-
-def mala_kernel(target: Target):
-    """Build ``kernel(key, state, step_size, preconditioner) -> (state, StepInfo)``."""
-
-    def kernel(key, state: ChainState, step_size, preconditioner):
-        key_noise, key_accept = jax.random.split(key)
-        x, u_x, g_x = state
-        noise = jax.random.normal(key_noise, x.shape, x.dtype)
-        y = x - step_size * preconditioner * g_x + jnp.sqrt(2.0 * step_size * preconditioner) * noise
-        u_y, g_y = target.energy_and_grad(y)
-        forward = jnp.sum(noise**2) / 2.0
-        back_residual = x - y + step_size * preconditioner * g_y
-        backward = jnp.sum(back_residual**2 / preconditioner) / (4.0 * step_size)
-        log_ratio = -(u_y - u_x) - backward + forward
-        log_ratio = jnp.where(jnp.isfinite(log_ratio), log_ratio, -jnp.inf)
-        acceptance = jnp.exp(jnp.minimum(log_ratio, 0.0))
-        accept = jax.random.uniform(key_accept, (), x.dtype) < acceptance
-        new = jax.tree_util.tree_map(lambda a, b: jnp.where(accept, a, b), ChainState(y, u_y, g_y), state)
-        return new, StepInfo(acceptance, new.energy, jnp.isnan(u_y), u_y == jnp.inf)
-
-    return kernel
+DEFAULT_DAMPING = 0.1  # kinetic kernels: γh, the momentum decay per step (1 − e^{−γh} ≈ 10 %)
 
 
 class BlockOutput(NamedTuple):
@@ -154,24 +63,23 @@ class BlockOutput(NamedTuple):
     recorded: Array | None
     derivatives: Array | None
     nonfinite: Array  # (NaN proposals, +inf proposals) summed over the block's steps and chains
+    shadow_work: Array  # mean shadow work per step and chain (0 for exact kernels)
 
 
 @eqx.filter_jit
-def run_block(target: Target, key, states: ChainState, log_step, preconditioner, adapt_rate,
-              steps: int, record_every: int, observe_every: int = 0):
-    """Advance all chains ``steps`` MALA steps.
+def run_block(target: Target, key, states: ChainState, log_step, inverse_mass, adapt_rate, steps: int,
+              record_every: int, observe_every: int = 0, *, kernel: str = "mala", damping: float = DEFAULT_DAMPING,
+              builder=None) -> BlockOutput:
+    """Advance all chains ``steps`` steps of ``kernel``.
 
-    The step size ε = exp(log_step) is shared by all chains; when ``adapt_rate`` > 0
-    it follows a Robbins–Monro update towards :data:`TARGET_ACCEPTANCE` after every
-    step. Returns the new states, the final log step, the mean log step over the
-    block, per-chain mean acceptance, the energy trace (steps, chains), positions
-    recorded every ``record_every`` steps (or ``None`` when ``record_every`` is 0) and
-    ∂u/∂λ (:meth:`Target.lambda_derivative`) recorded every ``observe_every`` steps,
-    shape (steps // observe_every, chains) (or ``None`` when ``observe_every`` is 0), and the
-    number of proposals whose energy was NaN or +inf (:class:`BlockOutput`).
-    ``observe_every`` must be a multiple of ``record_every`` when both are given.
+    The step size exp(log_step) is shared by all chains; when ``adapt_rate`` > 0 it follows a
+    Robbins–Monro update towards the kernel's target acceptance after every step. Records the
+    energy every step, positions every ``record_every`` steps (none when 0) and ∂u/∂λ
+    (:meth:`Target.lambda_derivative`) every ``observe_every`` steps (none when 0), which must be
+    a multiple of ``record_every`` when both are given. ``damping`` is γh of the kinetic kernels;
+    ``builder`` brings carried neighbour lists up to date (particle models).
     """
-    kernel = jax.vmap(mala_kernel(target), in_axes=(0, 0, None, None))
+    spec = KERNELS[kernel]
     derivative = jax.vmap(target.lambda_derivative)
     chains = states.energy.shape[0]
     every = record_every or observe_every or 1
@@ -185,10 +93,12 @@ def run_block(target: Target, key, states: ChainState, log_step, preconditioner,
     def step(carry, key_step):
         states, log_step = carry
         keys = jax.random.split(key_step, chains)
-        states, info = kernel(keys, states, jnp.exp(log_step), preconditioner)
-        log_step = log_step + adapt_rate * (jnp.mean(info.acceptance) - TARGET_ACCEPTANCE)
+        size = jnp.exp(log_step)
+        params = KernelParams(size, inverse_mass, jnp.asarray(damping, size.dtype) / size)
+        states, info, shadow = spec.step(target, keys, states, params, builder)
+        log_step = log_step + adapt_rate * (jnp.mean(info.acceptance) - spec.target_acceptance)
         odd = jnp.stack([jnp.sum(info.proposal_nan), jnp.sum(info.proposal_forbidden)])
-        return (states, log_step), (info.acceptance, info.energy, log_step, odd)
+        return (states, log_step), (info.acceptance, info.energy, log_step, odd, shadow)
 
     def record(carry, keys):
         # inner scan between two recordings: only every `every`-th position is kept in memory
@@ -202,14 +112,28 @@ def run_block(target: Target, key, states: ChainState, log_step, preconditioner,
         return carry, (outputs, du)
 
     keys = jax.random.split(key, steps).reshape((steps // group, group // every, every) + key.shape)
-    (states, log_step_end), (((acc, energies, log_steps, odd), recorded), du) = jax.lax.scan(
+    (states, log_step_end), (((acc, energies, log_steps, odd, shadow), recorded), du) = jax.lax.scan(
         observe, (states, log_step), keys)
     flat = lambda a: a.reshape((steps,) + a.shape[3:])  # noqa: E731
-    acc, energies, log_steps = flat(acc), flat(energies), flat(log_steps)
+    acc, energies, log_steps, shadow = flat(acc), flat(energies), flat(log_steps), flat(shadow)
     if recorded is not None:
         recorded = recorded.reshape((steps // every,) + recorded.shape[2:])
     odd = jnp.sum(odd.reshape(steps, 2), axis=0)
-    return BlockOutput(states, log_step_end, jnp.mean(log_steps), jnp.mean(acc, axis=0), energies, recorded, du, odd)
+    return BlockOutput(states, log_step_end, jnp.mean(log_steps), jnp.mean(acc, axis=0), energies, recorded, du, odd,
+                       jnp.mean(shadow))
+
+
+def init_chains(target: Target, positions, *, kernel: str = "mala", key=None, inverse_mass=None, builder=None
+                ) -> ChainState:
+    """Chains at ``positions`` (stacked): energies, gradients, momenta (kinetic kernels) and lists."""
+    lists = None if builder is None else builder.build_batch(positions)
+    energy, grad = jax.vmap(target.energy_and_grad, in_axes=(0, 0 if lists is not None else None))(positions, lists)
+    if KERNELS[kernel].kinetic:
+        momentum = draw_momenta(key, positions, jnp.ones(positions.shape[1:], positions.dtype)
+                                if inverse_mass is None else inverse_mass)
+    else:
+        momentum = jnp.zeros_like(positions)
+    return ChainState(positions, energy, grad, momentum, lists)
 
 
 @dataclasses.dataclass
@@ -218,7 +142,7 @@ class StateSamples:
 
     Attributes:
         samples: configurations, shape (n, *configuration shape), from healthy chains only.
-        step_size: adapted MALA step ε (reduced units, scaled by ``preconditioner``).
+        step_size: adapted step (MALA ε, kinetic h; reduced units, scaled by ``preconditioner``).
         preconditioner: the diagonal preconditioner M (configuration shape), 1 where unused.
         acceptance: mean acceptance over healthy chains in production.
         autocorrelation_time: integrated autocorrelation time τ (steps) of the slowest observable.
@@ -237,6 +161,9 @@ class StateSamples:
             which flags the result).
         forbidden_proposals: proposals whose energy was +∞ (rejected; a forbidden region such as
             a hard wall, which is legitimate).
+        kernel: the sampling kernel used; shadow_work_per_step: mean shadow work (kT) per step and
+            chain in the second half of burn-in (unadjusted kinetic kernel; 0 for exact ones).
+        neighbour_list_grown: times a carried neighbour list overflowed and was enlarged.
     """
 
     samples: np.ndarray
@@ -256,6 +183,9 @@ class StateSamples:
     derivative_evaluations: int = 0
     nan_proposals: int = 0
     forbidden_proposals: int = 0
+    kernel: str = "mala"
+    shadow_work_per_step: float = 0.0
+    neighbour_list_grown: int = 0
 
     def diagnostics(self) -> dict:
         return {
@@ -271,9 +201,13 @@ class StateSamples:
             "autocorrelation_times": dict(self.autocorrelation_times),
             "evaluations": self.evaluations,
             "derivative_evaluations": self.derivative_evaluations,
+            "kernel": self.kernel,
+            "shadow_work_per_step": self.shadow_work_per_step,
+            "neighbour_list_grown": self.neighbour_list_grown,
             "nan_proposals": self.nan_proposals,
             "forbidden_proposals": self.forbidden_proposals,
         }
+
 
 
 def nonfinite_warnings(name: str, nan_count: int, forbidden_count: int) -> list[str]:
@@ -291,57 +225,6 @@ def nonfinite_warnings(name: str, nan_count: int, forbidden_count: int) -> list[
 
 # ------------------------------------------------------------------ time-series analysis
 
-def autocorrelation_time(trace: np.ndarray, window_factor: float = 5.0) -> float:
-    """Integrated autocorrelation time τ = 1 + 2 Σ ρ(t) of ``trace[step, chain]``.
-
-    The autocovariance is centred on the grand mean over all chains (so chains that
-    disagree show up as long correlation) and averaged over chains; the sum is cut
-    by Sokal's automatic window (smallest M with M ≥ c·τ(M), c = 5; Sokal 1997,
-    "Monte Carlo methods in statistical mechanics: foundations and new algorithms", in Functional Integration, NATO ASI Series B 361, Plenum [mem]).
-    Returns ``len(trace)`` when no window fits (the trace is too short).
-    """
-    trace = _ranked_if_infinite(trace)
-    if trace.ndim == 1:
-        trace = trace[:, None]
-    n = trace.shape[0]
-    centred = trace - trace.mean()
-    variance = np.mean(centred**2)
-    if n < 4 or variance <= 0 or not np.isfinite(variance):
-        return 1.0
-    size = 1 << int(math.ceil(math.log2(2 * n)))
-    spectrum = np.fft.rfft(centred, n=size, axis=0)
-    acov = np.fft.irfft(spectrum * np.conj(spectrum), n=size, axis=0)[:n].mean(axis=1)
-    acov /= np.arange(n, 0, -1)
-    rho = acov / acov[0]
-    tau = 2.0 * np.cumsum(rho) - 1.0
-    window = np.arange(n)
-    ok = window >= window_factor * tau
-    if not np.any(ok):
-        return float(n)
-    return float(max(1.0, tau[np.argmax(ok)]))
-
-
-def split_mixing_statistic(trace: np.ndarray) -> float:
-    """Split potential-scale reduction of ``trace[step, chain]`` (1.0 = chains agree).
-
-    Each chain is split in halves; the between-half-chain variance of the means is
-    compared with the mean within variance (Gelman & Rubin 1992, Stat. Sci. 7, 457;
-    split form: Vehtari et al. 2021, Bayesian Analysis 16, 667).
-    """
-    trace = _ranked_if_infinite(trace)
-    n = trace.shape[0] // 2
-    if n < 2:
-        return float("nan")
-    halves = np.concatenate([trace[:n], trace[n : 2 * n]], axis=1)
-    within = np.mean(np.var(halves, axis=0, ddof=1))
-    between = n * np.var(np.mean(halves, axis=0), ddof=1)
-    if within <= 0:
-        return 1.0 if between <= 0 else float("inf")
-    pooled = (n - 1) / n * within + between / n
-    return float(np.sqrt(pooled / within))
-
-
-# ------------------------------------------------------------------ the driver
 
 def _production_plan(samples: int, healthy: int, chains: int, stride: int, per_call: int, remaining: int,
                      tau: float) -> tuple[int, int, str]:
@@ -385,22 +268,6 @@ def _observables(energies: list[np.ndarray], positions: list[np.ndarray] | None,
     return traces
 
 
-def _ranked_if_infinite(trace: np.ndarray) -> np.ndarray:
-    """Ranks of the values when some are infinite (e.g. ∂u/∂λ where the other end forbids a state).
-
-    Rank-normalising keeps the order (so slow switching between finite and infinite values still
-    shows as correlation and as chain disagreement; as in the rank-normalised R̂ of Vehtari et al.
-    2021, Bayesian Analysis 16, 667) and makes the moments finite.
-    """
-    trace = np.asarray(trace, dtype=np.float64)
-    if np.all(np.isfinite(trace)):
-        return trace
-    from scipy.stats import rankdata
-
-    cleaned = np.where(np.isnan(trace), np.inf, trace)
-    return rankdata(cleaned.reshape(-1)).reshape(trace.shape)
-
-
 def _judge(traces) -> tuple[float, float, dict[str, float]]:
     """Slowest τ (steps), worst split-R̂, and τ (steps) per observable kind."""
     taus: dict[str, float] = {}
@@ -411,48 +278,73 @@ def _judge(traces) -> tuple[float, float, dict[str, float]]:
     return float(max(taus.values())), float(rhat), taus
 
 
-def sample_state(
-    key,
-    target: Target,
-    start: Configuration,
-    *,
-    samples: int,
-    chains: int = 64,
-    evaluation_budget: int,
-    precondition: bool | None = None,
-    min_warmup: int = 200,
-    name: str = "end state",
-    initial_step_size: float | None = None,
-    starts: Configuration | None = None,
-    on_spent=None,
-) -> StateSamples:
-    """Draw ``samples`` equilibrium configurations of ``target`` starting from ``start``.
 
-    Args:
-        key: PRNG key.
-        target: the state to sample (reduced energy).
-        start: one configuration where every chain starts (a tiny jitter separates them).
-        starts: optional start set, k configurations stacked on a first axis, each of
-            ``start``'s shape; chain i then starts at ``starts[i mod k]`` (``start`` only
-            fixes the shape). Starts in different basins make chains disagree in the
-            split-R̂ check until they have mixed, so a slow mode cannot pass unseen.
-        samples: number of configurations to return.
-        chains: number of parallel chains.
-        evaluation_budget: most energy evaluations this call may spend; when burn-in
-            has not converged by then, sampling stops early and says so.
-        precondition: diagonal preconditioning; default on for vector configurations
-            (shape (d,)) and off for particle coordinates (periodic wrapping makes
-            coordinate variances meaningless there).
-        name: used in warnings.
-        on_spent: optional callback ``on_spent(evaluations)`` after each block (progress meters).
-    """
-    start = jnp.asarray(start)
-    if precondition is None:
-        precondition = start.ndim == 1
-    per_call = target.evaluations()
-    per_derivative = target.derivative_evaluations()
+
+# ------------------------------------------------------------------ the driver
+
+@dataclasses.dataclass
+class _Chains:
+    """The chains of one :func:`sample_state` call and what they have spent (host side)."""
+
+    target: Target
+    kernel: str
+    states: ChainState
+    log_step: Any
+    inverse_mass: Any
+    keys: Any
+    chains: int
+    per_call: int
+    per_derivative: int
+    budget: int
+    damping: float = DEFAULT_DAMPING
+    builder: Any = None
+    on_spent: Any = None
+    spent: int = 0
+    derivative_spent: int = 0
+    nonfinite: np.ndarray = dataclasses.field(default_factory=lambda: np.zeros(2, dtype=np.int64))
+    shadow: list = dataclasses.field(default_factory=list)
+    grown: int = 0
+
+    def cost(self, steps: int, observe_every: int = 0) -> int:
+        observed = steps // observe_every * self.per_derivative if observe_every else 0
+        return self.chains * (steps * self.per_call + observed)
+
+    def run(self, adapt_rate: float, steps: int = BLOCK_STEPS, record_every: int = 0, observe_every: int = 0,
+            log_step=None) -> BlockOutput:
+        """One block from the current states (rerun with a larger list after an overflow); books its cost."""
+        key = next(self.keys)
+        log_step = self.log_step if log_step is None else log_step
+        while True:
+            out = run_block(self.target, key, self.states, log_step, self.inverse_mass, adapt_rate, steps,
+                            record_every, observe_every, kernel=self.kernel, damping=self.damping,
+                            builder=self.builder)
+            if self.builder is None or not bool(np.any(np.asarray(out.states.neighbours.overflow))):
+                break
+            self.spent += self.cost(steps, observe_every)  # the discarded block was computed: book it
+            self._grow(out.states.neighbours)
+        self.states = out.states
+        cost = self.cost(steps, observe_every)
+        self.spent += cost
+        self.derivative_spent += cost - self.cost(steps)
+        self.nonfinite += np.asarray(out.nonfinite, dtype=np.int64)
+        self.shadow.append(float(out.shadow_work))
+        if self.on_spent is not None:
+            self.on_spent(cost)
+        return out
+
+    def _grow(self, overflowed) -> None:
+        """A list overflowed: make room (×1.3 of what was needed) and rebuild from the block's start."""
+        from .energy.neighbours import grown_capacity
+
+        pairs, cells = grown_capacity(overflowed)
+        self.builder = self.builder.with_capacity(pairs, cells)
+        self.states = self.states._replace(neighbours=self.builder.build_batch(self.states.position))
+        self.grown += 1
+
+
+def _start(key, target, start, starts, chains, kernel, builder):
+    """Chain start positions (start set round-robin, tiny jitter) and the first states."""
     key_jitter, key_run = jax.random.split(key)
-    keys = iter(jax.random.split(key_run, 10_000))
     if starts is None:
         origins = jnp.broadcast_to(start, (chains,) + start.shape)
     else:
@@ -462,84 +354,76 @@ def sample_state(
                              f"got shape {starts.shape}")
         origins = starts[jnp.arange(chains) % starts.shape[0]]  # round-robin over the chains
     positions = origins + 1e-3 * jax.random.normal(key_jitter, (chains,) + start.shape, start.dtype)
-    states = jax.vmap(target.energy_and_grad)(positions)
-    states = ChainState(positions, states[0], states[1])
-    spent = chains * per_call
-    derivative_spent = 0
-    preconditioner = jnp.ones(start.shape, start.dtype)
-    record = 5 if precondition else 0
-    warnings: list[str] = []
+    states = init_chains(target, positions, kernel=kernel, key=jax.random.fold_in(key_jitter, 1), builder=builder)
+    return states, iter(jax.random.split(key_run, 10_000))
 
-    # initial step: scale of the inverse gradient norm is a safe first guess
-    if initial_step_size is None:
-        gnorm2 = float(jnp.mean(jnp.sum(states.grad.reshape(chains, -1) ** 2, axis=1)))
-        dim = int(np.prod(start.shape)) or 1
-        initial_step_size = float(np.clip(dim / max(gnorm2, 1e-12), 1e-6, 1.0)) * 0.1
-    log_step = jnp.log(jnp.asarray(initial_step_size, start.dtype))
 
-    def block_cost(observe_every=0):
-        return chains * (BLOCK_STEPS * per_call + (BLOCK_STEPS // observe_every * per_derivative if observe_every else 0))
+def _first_step_size(states: ChainState, kernel: str, start) -> float:
+    """The scale of the inverse gradient norm: a safe first guess (MALA ε; kinetic h = √(2ε))."""
+    chains = states.energy.shape[0]
+    gnorm2 = float(jnp.mean(jnp.sum(states.grad.reshape(chains, -1) ** 2, axis=1)))
+    dim = int(np.prod(start.shape)) or 1
+    epsilon = float(np.clip(dim / max(gnorm2, 1e-12), 1e-6, 1.0)) * 0.1
+    return math.sqrt(2.0 * epsilon) if KERNELS[kernel].kinetic else epsilon
 
-    nonfinite = np.zeros(2, dtype=np.int64)  # proposals with NaN energy, with +inf energy
 
-    def block(states, log_step, adapt_rate, record_every, observe_every=0):
-        nonlocal spent, derivative_spent, nonfinite
-        out = run_block(target, next(keys), states, log_step, preconditioner, adapt_rate, BLOCK_STEPS, record_every,
-                        observe_every)
-        spent += block_cost(observe_every)
-        derivative_spent += block_cost(observe_every) - block_cost(0)
-        nonfinite += np.asarray(out.nonfinite, dtype=np.int64)
-        if on_spent is not None:
-            on_spent(block_cost(observe_every))
-        return out[:7]
-
-    # ---- warm-up: step size (and preconditioner, in doubling windows)
+def _warm_up(ch: _Chains, precondition: bool, record: int, min_warmup: int, start) -> None:
+    """Step-size adaptation (and the preconditioner / inverse mass in doubling windows)."""
     warm_blocks = max(1, min_warmup // BLOCK_STEPS)
+    power = KERNELS[ch.kernel].step_scale_power
     window, done_blocks = 1, 0
-    mean_log_step = log_step
     while done_blocks < warm_blocks or (precondition and window <= 4):
         recorded = []
         for _ in range(window if precondition else warm_blocks):
-            states, log_step, mean_log_step, acc, _, pos, _ = block(states, log_step, 0.05, record)
+            out = ch.run(0.05, record_every=record)
+            ch.log_step = out.log_step
             done_blocks += 1
-            if pos is not None:
-                recorded.append(np.asarray(pos))
-            if spent > evaluation_budget * 0.5:
+            if out.recorded is not None:
+                recorded.append(np.asarray(out.recorded))
+            if ch.spent > ch.budget * 0.5:
                 break
         if precondition and recorded:
             pos = np.concatenate(recorded).reshape(-1, *start.shape)
             var = np.var(pos, axis=0)
             scale = np.median(var[var > 0]) if np.any(var > 0) else 1.0
             var = np.clip(var, scale * 1e-4, scale * 1e4) if scale > 0 else np.ones_like(var)
-            # keep εM fixed in magnitude when M changes so adaptation resumes near its optimum
-            old_mean = float(jnp.mean(preconditioner))
-            preconditioner = jnp.asarray(var, start.dtype)
-            log_step = log_step + jnp.log(old_mean / float(jnp.mean(preconditioner)))
-            mean_log_step = log_step
+            # keep the step's reach fixed when the metric changes so adaptation resumes near its optimum
+            old_mean = float(jnp.mean(ch.inverse_mass))
+            ch.inverse_mass = jnp.asarray(var, start.dtype)
+            ch.log_step = ch.log_step + power * jnp.log(old_mean / float(jnp.mean(ch.inverse_mass)))
+            if KERNELS[ch.kernel].kinetic:   # momenta of the new mass
+                ch.states = ch.states._replace(momentum=draw_momenta(next(ch.keys), ch.states.position, ch.inverse_mass))
         window *= 2
-        if not precondition or spent > evaluation_budget * 0.5:
+        if not precondition or ch.spent > ch.budget * 0.5:
             break
-    # one more adaptation block with the final preconditioner
-    states, log_step, mean_log_step, acc, _, _, _ = block(states, log_step, 0.05, 0)
-    log_step = mean_log_step
-    warmup_steps = (spent // (chains * per_call))
+    out = ch.run(0.05)   # one more adaptation block with the final metric
+    ch.log_step = out.mean_log_step
 
-    # ---- burn-in with measurement: the energy every step, coordinates every `record` steps
-    # (vector systems) and ∂u/∂λ, the observable ΔF depends on, every `observe` steps
-    energies: list[np.ndarray] = []
-    pos_trace: list[np.ndarray] = []
-    du_trace: list[np.ndarray] = []
-    acc_blocks: list[np.ndarray] = []
+
+@dataclasses.dataclass
+class _BurnIn:
+    tau: float
+    rhat: float
+    taus: dict
+    equilibrated: bool
+    acceptance_blocks: list
+    blocks: int
+    observe: int
+
+
+def _burn_in(ch: _Chains, record: int) -> _BurnIn:
+    """Blocks until τ fits ten times into the judged half and the chains agree (or the share ends)."""
+    energies, pos_trace, du_trace, acc_blocks = [], [], [], []
     observe = DERIVATIVE_EVERY
     tau, rhat, equilibrated, taus = float("nan"), float("nan"), False, {}
     while True:
-        states, _, _, acc, energy_trace, pos, du = block(states, log_step, 0.0, record, observe)
-        energies.append(np.asarray(energy_trace))
-        acc_blocks.append(np.asarray(acc))
-        if pos is not None:
-            pos_trace.append(np.asarray(pos))
-        if du is not None:
-            du = np.asarray(du)
+        out = ch.run(0.0, record_every=record, observe_every=observe)
+        energies.append(np.asarray(out.energies))
+        acc_blocks.append(np.asarray(out.acceptance))
+        if out.recorded is not None:
+            pos_trace.append(np.asarray(out.recorded))
+        if out.derivatives is not None:
+            du = np.asarray(out.derivatives)
             if len(du_trace) == 0 and np.all(du == du.flat[0]):
                 # ∂u/∂λ is exactly constant here (e.g. a smooth stage shape at an end of a decoupling path):
                 # it carries no information, so stop paying for it
@@ -556,73 +440,128 @@ def sample_state(
                 equilibrated = True
                 break
         # burn-in may use BURN_IN_SHARE of the budget; the rest is for production
-        if spent + block_cost(observe) > BURN_IN_SHARE * evaluation_budget:
+        if ch.spent + ch.cost(BLOCK_STEPS, observe) > BURN_IN_SHARE * ch.budget:
             break
     if not np.isfinite(tau):  # the budget ended burn-in after one block: judge the whole trace
         tau, rhat, taus = _judge(_observables(energies, pos_trace or None, du_trace or None, record, observe))
-    burn_in = warmup_steps + len(energies) * BLOCK_STEPS
+    return _BurnIn(tau, rhat, taus, equilibrated, acc_blocks, len(energies), observe)
 
-    # ---- stuck chains
+
+def _healthy_chains(acc_blocks, chains: int, name: str, warnings: list[str]):
     acc_chain = np.mean(np.stack(acc_blocks[-max(1, len(acc_blocks) // 2):]), axis=0)
     stuck = acc_chain < STUCK_ACCEPTANCE
     if np.all(stuck):
         raise RuntimeError(
             f"{name}: every sampling chain is stuck (acceptance below {STUCK_ACCEPTANCE}); "
             "check that the energy is smooth and finite near the start configuration")
-    healthy = np.flatnonzero(~stuck)
     if stuck.any():
         warnings.append(f"{name}: {int(stuck.sum())} of {chains} sampling chains were stuck (acceptance below "
                         f"{STUCK_ACCEPTANCE:.0%}) and were excluded from the samples (their cost still counts).")
+    return np.flatnonzero(~stuck), stuck, acc_chain
 
-    # ---- production: every chain continues, sampled every ceil(tau) steps, within the budget
+
+def _production(ch: _Chains, samples: int, healthy, acc_chain, tau: float, name: str, warnings: list[str], shape):
+    """Every chain continues; one sample every ⌈τ⌉ steps, chains interleaved, within the budget."""
     stride = max(1, int(math.ceil(tau))) if np.isfinite(tau) else 1
-    remaining = max(evaluation_budget - spent, 0)
-    stride, per_chain, note = _production_plan(samples, len(healthy), chains, stride, per_call, remaining, tau)
+    remaining = max(ch.budget - ch.spent, 0)
+    stride, per_chain, note = _production_plan(samples, len(healthy), ch.chains, stride, ch.per_call, remaining, tau)
     if note:
         warnings.append(f"{name}: {note}")
     if per_chain > 0:
-        out = run_block(target, next(keys), states, log_step, preconditioner, 0.0, stride * per_chain, stride)
-        states, _, _, acc, _, pos, _ = out[:7]
-        nonfinite += np.asarray(out.nonfinite, dtype=np.int64)
-        spent += chains * stride * per_chain * per_call
-        if on_spent is not None:
-            on_spent(chains * stride * per_chain * per_call)
-        pos = np.asarray(pos)
-        acceptance = float(np.mean(np.asarray(acc)[healthy]))
+        out = ch.run(0.0, steps=stride * per_chain, record_every=stride)
+        pos = np.asarray(out.recorded)
+        acceptance = float(np.mean(np.asarray(out.acceptance)[healthy]))
     else:  # nothing left to spend: the chains' current positions are the samples
-        pos = np.asarray(states.position)[None]
+        pos = np.asarray(ch.states.position)[None]
         acceptance = float(np.mean(acc_chain[healthy]))
         per_chain = 1
     pos = pos[:, healthy]
     # interleave chains so that a prefix of the array draws from every chain
-    flat = np.moveaxis(pos, 0, 1).reshape((len(healthy), per_chain) + start.shape)
-    flat = np.swapaxes(flat, 0, 1).reshape((-1,) + start.shape)[:samples]
+    flat = np.moveaxis(pos, 0, 1).reshape((len(healthy), per_chain) + tuple(shape))
+    return np.swapaxes(flat, 0, 1).reshape((-1,) + tuple(shape))[:samples], stride, acceptance
 
-    if not equilibrated:
+
+def sample_state(
+    key,
+    target: Target,
+    start: Configuration,
+    *,
+    samples: int,
+    chains: int = 64,
+    evaluation_budget: int,
+    precondition: bool | None = None,
+    min_warmup: int = 200,
+    name: str = "end state",
+    initial_step_size: float | None = None,
+    starts: Configuration | None = None,
+    on_spent=None,
+    kernel: str = "mala",
+    damping: float = DEFAULT_DAMPING,
+    builder=None,
+) -> StateSamples:
+    """Draw ``samples`` equilibrium configurations of ``target`` starting from ``start``.
+
+    Args:
+        key: PRNG key.
+        target: the state to sample (reduced energy).
+        start: one configuration where every chain starts (a tiny jitter separates them).
+        starts: optional start set, k configurations stacked on a first axis, each of
+            ``start``'s shape; chain i then starts at ``starts[i mod k]`` (``start`` only
+            fixes the shape). Starts in different basins make chains disagree in the
+            split-R̂ check until they have mixed, so a slow mode cannot pass unseen.
+        samples: number of configurations to return.
+        chains: number of parallel chains.
+        evaluation_budget: most energy evaluations this call may spend; when burn-in
+            has not converged by then, sampling stops early and says so.
+        precondition: diagonal preconditioning (inverse mass for the kinetic kernels); default
+            on for vector configurations (shape (d,)) and off for particle coordinates.
+        name: used in warnings.
+        on_spent: optional callback ``on_spent(evaluations)`` after each block (progress meters).
+        kernel: ``"mala"``, ``"kinetic"`` or ``"kinetic_exact"`` (:data:`fe_tool.kernels.KERNELS`).
+        damping: γh of the kinetic kernels.
+        builder: a neighbour-list builder with a skin for particle models that carry a list;
+            by default the path's own (:meth:`Path.dynamics_neighbour_builder`), if any.
+    """
+    start = jnp.asarray(start)
+    builder = builder if builder is not None else target.path.dynamics_neighbour_builder()
+    if kernel not in KERNELS:
+        raise ValueError(f"kernel must be one of {sorted(KERNELS)}, got {kernel!r}")
+    if precondition is None:
+        precondition = start.ndim == 1
+    states, keys = _start(key, target, start, starts, chains, kernel, builder)
+    step0 = initial_step_size if initial_step_size is not None else _first_step_size(states, kernel, start)
+    ch = _Chains(target, kernel, states, jnp.log(jnp.asarray(step0, start.dtype)), jnp.ones(start.shape, start.dtype),
+                 keys, chains, target.evaluations(), target.derivative_evaluations(), int(evaluation_budget),
+                 float(damping), builder, on_spent, spent=chains * target.evaluations())
+    record = 5 if precondition else 0
+    warnings: list[str] = []
+    _warm_up(ch, precondition, record, min_warmup, start)
+    warmup_steps = ch.spent // (chains * ch.per_call)
+    burn = _burn_in(ch, record)
+    healthy, stuck, acc_chain = _healthy_chains(burn.acceptance_blocks, chains, name, warnings)
+    flat, stride, acceptance = _production(ch, samples, healthy, acc_chain, burn.tau, name, warnings, start.shape)
+    return _finish(ch, flat, stride, acceptance, burn, stuck, warmup_steps, name, warnings)
+
+
+def _finish(ch: _Chains, flat, stride, acceptance, burn: _BurnIn, stuck, warmup_steps, name, warnings) -> StateSamples:
+    tau, rhat = burn.tau, burn.rhat
+    if not burn.equilibrated:
         warnings.append(
             f"{name}: sampling did not pass the equilibration checks within its share of the budget "
             f"(autocorrelation time {tau:.0f} steps, chain agreement statistic {rhat:.2f}; want < {MIXING_LIMIT}). "
             "The end state may be multimodal or slow to mix: raise the budget or give a better start configuration.")
     if acceptance < 0.2:
         warnings.append(f"{name}: low sampler acceptance {acceptance:.2f}; the energy may be very rough.")
-    warnings.extend(nonfinite_warnings(name, int(nonfinite[0]), 0))  # +inf ones: summarised by the route
+    warnings.extend(nonfinite_warnings(name, int(ch.nonfinite[0]), 0))  # +inf ones: summarised by the route
     ess = float(len(flat) * min(1.0, stride / max(tau, 1.0))) if np.isfinite(tau) else float("nan")
     return StateSamples(
-        samples=flat,
-        step_size=float(jnp.exp(log_step)),
-        preconditioner=np.asarray(preconditioner),
-        acceptance=acceptance,
-        autocorrelation_time=float(tau),
-        effective_sample_size=ess,
-        evaluations=int(spent),
-        chains=chains,
-        stuck_chains=int(stuck.sum()),
-        burn_in_steps=int(burn_in),
-        equilibrated=equilibrated,
-        mixing_statistic=float(rhat),
-        warnings=warnings,
-        autocorrelation_times={k: float(v) for k, v in taus.items()},
-        derivative_evaluations=int(derivative_spent),
-        nan_proposals=int(nonfinite[0]),
-        forbidden_proposals=int(nonfinite[1]),
-    )
+        samples=flat, step_size=float(jnp.exp(ch.log_step)), preconditioner=np.asarray(ch.inverse_mass),
+        acceptance=acceptance, autocorrelation_time=float(tau), effective_sample_size=ess,
+        evaluations=int(ch.spent), chains=ch.chains, stuck_chains=int(stuck.sum()),
+        burn_in_steps=int(warmup_steps + burn.blocks * BLOCK_STEPS), equilibrated=burn.equilibrated,
+        mixing_statistic=float(rhat), warnings=warnings,
+        autocorrelation_times={k: float(v) for k, v in burn.taus.items()},
+        derivative_evaluations=int(ch.derivative_spent), nan_proposals=int(ch.nonfinite[0]),
+        forbidden_proposals=int(ch.nonfinite[1]), kernel=ch.kernel,
+        shadow_work_per_step=float(np.mean(ch.shadow[-max(1, len(ch.shadow) // 2):])) if ch.shadow else 0.0,
+        neighbour_list_grown=ch.grown)

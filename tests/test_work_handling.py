@@ -11,7 +11,8 @@ import math
 import numpy as np
 import pytest
 
-from fe_tool import workflow
+from fe_tool.routes import switching as route
+from fe_tool.routes.ledger import Ledger
 from fe_tool.diagnostics import check_agreement, check_headline
 from fe_tool.estimators import Estimate, jarzynski
 from fe_tool.sampling import StateSamples
@@ -37,26 +38,26 @@ def crooks_pair_with_blocked_reverse(generator, count, mean=2.5, spread=1.0, blo
 def test_large_positive_works_are_kept_not_dropped():
     generator = np.random.default_rng(20261206)
     forward, reverse, exact = crooks_pair_with_blocked_reverse(generator, 50_000)
-    assert not workflow.mark_diverged(np.array([1e8, 1e30, np.inf])).any()
-    assert workflow.mark_diverged(np.array([np.nan, -np.inf])).all()
+    assert not route.mark_diverged(np.array([1e8, 1e30, np.inf])).any()
+    assert route.mark_diverged(np.array([np.nan, -np.inf])).all()
     # as the route processes them: divergences become NaN in place, then the estimators run
-    processed = np.where(workflow.mark_diverged(reverse), np.nan, reverse)
-    estimates, overlap = workflow.run_estimators(forward, processed, seed=0)
+    processed = np.where(route.mark_diverged(reverse), np.nan, reverse)
+    estimates, overlap = route.run_estimators(forward, processed, seed=0)
     b = estimates["bar"]
     print(f"BAR {b.delta_f:.4f} ± {b.stderr:.4f}, exact {exact:.4f}, overlap {overlap:.3f}")
     assert abs(b.delta_f - exact) < 4.0 * b.stderr
     assert b.samples == forward.size + reverse.size   # the blocked ones count
     # dropping them instead (what used to happen) misses by ln(1 − 0.05) ≈ −0.05, far beyond 4σ
-    dropped = workflow.run_estimators(forward, reverse[reverse < 1e6], seed=0)[0]["bar"]
+    dropped = route.run_estimators(forward, reverse[reverse < 1e6], seed=0)[0]["bar"]
     assert abs(dropped.delta_f - exact) > 4.0 * dropped.stderr
 
 
 def test_large_works_are_described_not_flagged():
     generator = np.random.default_rng(7)
     forward, reverse, _ = crooks_pair_with_blocked_reverse(generator, 2000)
-    ledger = workflow._Ledger()
+    ledger = Ledger()
     samples = StateSamples(np.zeros((2000, 1)), 0.1, np.ones(1), 0.6, 1.0, 2000.0, 0, 64, 0, 0, True, 1.0, [])
-    workflow._estimate_stage(forward, reverse, {"a": samples, "b": samples}, 0, ledger)
+    route._estimate_stage(forward, reverse, {"a": samples, "b": samples}, 0, ledger)
     text = " ".join(ledger.warnings)
     assert "legitimate samples" in text and "diverged" not in text
     assert not ledger.flagged
@@ -69,23 +70,23 @@ def test_one_sided_choice_ignores_error_bars():
     delta = 1.0
     forward = generator.normal(delta + 6.0, math.sqrt(12.0), 400)
     reverse = generator.normal(-delta + 0.5, 1.0, 400)
-    estimates, _ = workflow.run_estimators(forward, reverse, seed=0)
-    choice = workflow.choose_one_sided(estimates, forward, reverse)
+    estimates, _ = route.run_estimators(forward, reverse, seed=0)
+    choice = route.choose_one_sided(estimates, forward, reverse)
     assert choice == "jarzynski_forward"
     # shrinking either estimate's error bar must not change the choice
     for name in ("jarzynski_forward", "jarzynski_reverse"):
         tweaked = dict(estimates)
         tweaked[name] = Estimate(estimates[name].delta_f, 1e-6, "jarzynski", "bias-aware", 400, {})
-        assert workflow.choose_one_sided(tweaked, forward, reverse) == choice
+        assert route.choose_one_sided(tweaked, forward, reverse) == choice
 
 
 def test_poor_overlap_flags_whatever_the_headline():
     generator = np.random.default_rng(12)
     forward = generator.normal(30.0, 2.0, 300)
     reverse = generator.normal(30.0, 2.0, 300)     # hysteresis 60 kT: no overlap at all
-    ledger = workflow._Ledger()
+    ledger = Ledger()
     samples = StateSamples(np.zeros((300, 1)), 0.1, np.ones(1), 0.6, 1.0, 300.0, 0, 64, 0, 0, True, 1.0, [])
-    _, headline, _, overlap, _ = workflow._estimate_stage(forward, reverse, {"a": samples, "b": samples}, 0, ledger)
+    _, headline, _, overlap, _ = route._estimate_stage(forward, reverse, {"a": samples, "b": samples}, 0, ledger)
     assert overlap < 0.01 and headline != "bar"
     assert ledger.flagged
 

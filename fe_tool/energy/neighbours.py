@@ -24,6 +24,7 @@ Example:
 """
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 
@@ -257,6 +258,29 @@ class NeighbourListBuilder(eqx.Module):
             lambda: neighbours,
         )
 
+    def build_batch(self, positions: Float[Array, "c n d"]) -> NeighbourList:
+        """Lists for a batch of configurations (stacked on a first axis)."""
+        return jax.vmap(self.build)(positions)
+
+    def update_batch(self, positions: Float[Array, "c n d"], neighbours: NeighbourList) -> NeighbourList:
+        """Bring a batch of lists up to date under one ``lax.cond``: if any configuration has a
+        particle that moved more than ``skin / 2``, rebuild every list, else keep them all.
+
+        Deciding outside the ``vmap`` matters: under ``vmap`` the per-list ``cond`` of
+        :meth:`update` turns into a select, and the rebuild would run on every call.
+        """
+        stale = jnp.any(jax.vmap(self.needs_rebuild)(positions, neighbours))
+        return jax.lax.cond(
+            stale,
+            lambda: jax.vmap(lambda x, old: self.build(x, previous=old))(positions, neighbours),
+            lambda: neighbours,
+        )
+
+    def with_capacity(self, capacity: int, cell_capacity: int | None = None) -> "NeighbourListBuilder":
+        """The same builder with a larger pair capacity (and cell capacity, when cells are used)."""
+        cells = self.cell_capacity if cell_capacity is None or self.cell_grid is None else int(cell_capacity)
+        return dataclasses.replace(self, capacity=int(capacity), cell_capacity=cells)
+
 
 def neighbour_list_builder(
     n_particles: int,
@@ -354,6 +378,14 @@ def check_neighbour_list(neighbours: NeighbourList) -> None:
     )
 
 
+def grown_capacity(neighbours: NeighbourList, factor: float = 1.3) -> tuple[int, int]:
+    """Pair and cell capacities that would have held what an overflowed list (or batch) met,
+    with room to spare: ``factor`` × the largest counts seen, plus a small margin."""
+    pairs = int(np.max(np.asarray(neighbours.max_pair_count)))
+    cells = int(np.max(np.asarray(neighbours.max_cell_occupancy)))
+    return int(math.ceil(factor * pairs)) + 16, int(math.ceil(factor * cells)) + 4
+
+
 def make_neighbour_list(
     positions,
     box,
@@ -395,6 +427,6 @@ def make_neighbour_list(
 
 __all__ = [
     "NeighbourList", "NeighbourListBuilder", "NeighbourListOverflowError", "all_pairs",
-    "check_neighbour_list", "count_pairs_within", "make_neighbour_list",
+    "check_neighbour_list", "count_pairs_within", "grown_capacity", "make_neighbour_list",
     "neighbour_list_builder",
 ]

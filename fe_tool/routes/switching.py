@@ -19,7 +19,7 @@ from .. import diagnostics as diag
 from ..estimators import bar, crooks_gaussian, jarzynski, solve_bar, work_overlap
 from ..estimators.grouped import with_grouped_error
 from ..estimators.spread import robust_spread
-from ..options import CONTROL_MODES, Options
+from ..options import CONTROL_MODES, Options, sampling_kernel
 from ..path import make_schedule
 from ..progress import EvaluationMeter, progress_enabled
 from ..results import Result
@@ -202,7 +202,8 @@ def _sample_ends(keys, path, x_a, x_b, starts, opts: Options, plan: SwitchingBud
     for end, k_end, x0 in (("a", keys[0], x_a), ("b", keys[1], x_b)):
         s = sample_state(k_end, end_target(path, end), x0, samples=samples_wanted, chains=plan.chains,
                          evaluation_budget=int(plan.sampling_cap), precondition=opts.precondition,
-                         name=f"end state {end.upper()}", starts=starts[end], on_spent=ledger.spend)
+                         name=f"end state {end.upper()}", starts=starts[end], on_spent=ledger.spend,
+                         kernel=sampling_kernel(opts))
         sampled[end] = s
         ledger.cost[f"sampling_{end}"] = s.evaluations
         ledger.warnings.extend(s.warnings)

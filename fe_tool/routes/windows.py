@@ -38,18 +38,19 @@ from ..estimators import gauss_legendre_windows, mbar, neighbour_bar, thermodyna
 from ..estimators.record import Estimate
 from ..path import SCHEDULES, LinearPath, Path, make_schedule
 from ..results import Result
+from ..kernels import ChainState, KernelParams
+from ..kernels.mala import mala_chain_step
 from ..sampling import (
-    ChainState,
+    DEFAULT_DAMPING,
     StateSamples,
     autocorrelation_time,
-    init_state,
-    mala_kernel,
+    init_chains,
     nonfinite_warnings,
     run_block,
     sample_state,
     window_target,
 )
-from ..options import InputError, Options
+from ..options import InputError, Options, sampling_kernel
 from ..progress import EvaluationMeter
 from .ledger import Ledger
 
@@ -173,7 +174,7 @@ def _affordable_samples(sampled: list[StateSamples], left: int, cap: int, per_ca
     return low
 
 
-def _produce(key, target, s: StateSamples, samples: int) -> int:
+def _produce(key, target, s: StateSamples, samples: int, damping: float = DEFAULT_DAMPING, builder=None) -> int:
     """Continue the healthy chains of an equilibrated window and keep one sample every ⌈τ⌉ steps.
 
     Replaces ``s.samples`` (chains interleaved, as :func:`~fe_tool.sampling.sample_state` lays them
@@ -182,12 +183,13 @@ def _produce(key, target, s: StateSamples, samples: int) -> int:
     healthy = s.chains - s.stuck_chains
     # sample_state interleaves chains: its first `healthy` samples are one per healthy chain
     starts = jnp.asarray(s.samples[:healthy])
-    states = jax.vmap(init_state, in_axes=(None, 0))(target, starts)
+    inverse_mass = jnp.asarray(s.preconditioner)
+    states = init_chains(target, starts, kernel=s.kernel, key=jax.random.fold_in(key, 1), inverse_mass=inverse_mass,
+                         builder=builder)
     stride = _stride(s)
     per_chain = int(math.ceil(samples / healthy))
-    out = run_block(
-        target, key, states, jnp.log(jnp.asarray(s.step_size, starts.dtype)), jnp.asarray(s.preconditioner),
-        0.0, stride * per_chain, stride)
+    out = run_block(target, key, states, jnp.log(jnp.asarray(s.step_size, starts.dtype)), inverse_mass,
+                    0.0, stride * per_chain, stride, kernel=s.kernel, damping=damping, builder=builder)
     acceptance, positions = out.acceptance, out.recorded
     s.nan_proposals += int(out.nonfinite[0])
     s.forbidden_proposals += int(out.nonfinite[1])
@@ -222,12 +224,13 @@ def _exchange_run(path: Path, key, positions, lams, step_sizes, preconditioners,
 
     def init(x, lam):
         u, g = jax.value_and_grad(energy)(x, lam)
-        return ChainState(x, u, g)
+        return ChainState(x, u, g, jnp.zeros_like(x), None)
 
     states = jax.vmap(jax.vmap(init, in_axes=(0, None)), in_axes=(0, 0))(positions, lams)
 
     def mala_one(key, state, lam, step, precond):
-        return mala_kernel(window_target(path, lam))(key, state, step, precond)
+        params = KernelParams(step, precond, jnp.zeros_like(step))
+        return mala_chain_step(window_target(path, lam), key, state, params)
 
     # vmap over chains (inner) and windows (outer)
     step_all = jax.vmap(jax.vmap(mala_one, in_axes=(0, 0, None, None, None)), in_axes=(0, 0, 0, 0, 0))
@@ -345,6 +348,9 @@ class WindowsPlan:
 
 def plan_windows(path: Path, opts: Options, budget: int) -> WindowsPlan:
     """The ladder, chains and budget split of a windows run; refuses a budget that cannot work."""
+    if opts.exchange and sampling_kernel(opts) != "mala":
+        raise InputError(f"exchange=True moves replicas with MALA steps, but sampler={opts.sampler!r}: "
+                         "use sampler='mala' (or 'auto') with exchange, or exchange=False.")
     windows = opts.windows
     if windows is None:
         # every window needs ~25 000 evaluations for warm-up, burn-in and a few hundred samples
@@ -376,7 +382,8 @@ def _window_order(lams: np.ndarray, window_starts: str) -> list[int]:
     return [k for k in range(lams.size) if lams[k] < 0.5] + [k for k in range(lams.size) if lams[k] >= 0.5][::-1]
 
 
-def _sample_windows(key, path, plan: WindowsPlan, x_a, x_b, starts, window_starts: str, ledger: Ledger):
+def _sample_windows(key, path, plan: WindowsPlan, x_a, x_b, starts, window_starts: str, ledger: Ledger,
+                    kernel: str = "mala"):
     """Equilibrate every window (one sample per chain); production is sized afterwards."""
     lams, count = plan.lams, plan.count
     window_keys = jax.random.split(key, count)
@@ -391,7 +398,8 @@ def _sample_windows(key, path, plan: WindowsPlan, x_a, x_b, starts, window_start
         start_set = (starts["a"] if lams[k] < 0.5 else starts["b"]) if from_end else None
         s = sample_state(window_keys[k], window_target(path, float(lams[k])), x0, samples=plan.chains,
                          chains=plan.chains, evaluation_budget=plan.equilibration_share,
-                         name=f"window {k} (λ = {lams[k]:.4g})", starts=start_set, on_spent=ledger.spend)
+                         name=f"window {k} (λ = {lams[k]:.4g})", starts=start_set, on_spent=ledger.spend,
+                         kernel=kernel)
         sampled[k] = s
         ledger.cost["sampling"] += s.evaluations
         ledger.warnings.extend(s.warnings)
@@ -573,7 +581,8 @@ def run_windows(path, x_a, x_b, kT: float, seed: int, starts, opts: Options, pla
     ledger = Ledger(cost={"sampling": 0}, meter=EvaluationMeter(plan.budget, "ΔF by windows", enabled=opts.progress))
     ledger.meter.stage(f"sampling {plan.count} windows")
     t0 = time.perf_counter()
-    sampled = _sample_windows(k_windows, path, plan, x_a, x_b, starts, opts.window_starts, ledger)
+    sampled = _sample_windows(k_windows, path, plan, x_a, x_b, starts, opts.window_starts, ledger,
+                              kernel=sampling_kernel(opts))
     exchange_info: dict[str, Any] = {}
     if opts.exchange:
         ledger.timings["sampling"] = time.perf_counter() - t0
