@@ -32,6 +32,10 @@ Batch file layout (TOML; every key is checked)::
     vary = { stiffness = [0.5, 1.0, 4.0] } # Cartesian product of the lists
     seeds = [0, 1]                         # optional: repeat every point with these seeds
                                            # (usable as {seed} in the name template)
+    states = ["site", "k{stiffness}"]      # optional, also in [[pair]]: the two states the pair joins,
+                                           # ΔF = F(second) − F(first); templates like the name.  When
+                                           # pairs name states, the batch's pairs form a network
+                                           # (fe_tool.network): see fe_tool.network_command
 
 A factory ``module:function`` is called with ``parameters`` as keywords and returns
 ``(energy_a, energy_b, start_a, start_b, kT)`` or the same with a sixth item, a dict of
@@ -98,13 +102,13 @@ __all__ = ["BatchError", "BatchSummary", "PairTask", "load_batch", "main_batch",
            "COLUMNS", "OUTCOMES"]
 
 COLUMNS = ("name", "hash", "delta_f", "stderr", "units", "estimator", "flagged", "warnings", "evaluations",
-           "seconds", "status", "error", "source")
+           "seconds", "status", "error", "source", "state_a", "state_b")
 OUTCOMES = {"ok": EXIT_OK, "flagged": EXIT_FLAGGED, "bad input": EXIT_BAD_INPUT, "internal error": EXIT_INTERNAL}
 FINISHED = ("ok", "flagged")          # outcomes a rerun keeps; the others are tried again
 TOP_KEYS = {"name", "python_path", "defaults", "pair", "scan"}
 DEFAULT_KEYS = {"seed", "settings"}
-PAIR_KEYS = {"name", "system", "factory", "parameters", "settings", "seed"}
-SCAN_KEYS = {"name", "factory", "parameters", "settings", "seed", "seeds", "vary"}
+PAIR_KEYS = {"name", "system", "factory", "parameters", "settings", "seed", "states"}
+SCAN_KEYS = {"name", "factory", "parameters", "settings", "seed", "seeds", "vary", "states"}
 LOCK_NAME = ".batch-runner.lock"
 MAX_BATCH_BYTES = 4 * 2 ** 20         # a batch file is a short text; refuse anything bigger before reading it
 MAX_NAME_LENGTH = 120                 # pair names become file names (pairs/NAME.json)
@@ -137,6 +141,7 @@ class PairTask:
     settings: dict[str, Any]       # estimate options including "seed"
     python_path: tuple[str, ...]
     content_hash: str
+    states: tuple[str, str] | None = None   # the two states the pair joins (network of pairs), if named
 
 
 def _outcome(row: dict[str, Any]) -> str:
@@ -338,6 +343,8 @@ def _make_task(entry: dict, where: str, defaults: dict, base: pathlib.Path, pyth
         raise BatchError(f"{where} ({name!r}): give exactly one of 'system' (a system file) or "
                          "'factory' ('module:function')")
     settings = _pair_settings(entry, where, defaults)
+    states = _pair_states(entry, where)
+    labels = {"states": list(states)} if states else {}
     parameters = entry.get("parameters", {})
     if not isinstance(parameters, dict):
         raise BatchError(f"{where}.parameters: expected a table of keyword arguments, got {_kind(parameters)}")
@@ -347,16 +354,29 @@ def _make_task(entry: dict, where: str, defaults: dict, base: pathlib.Path, pyth
         if not isinstance(entry["system"], str):
             raise BatchError(f"{where}.system: expected a file path or bundled name, got {_kind(entry['system'])}")
         path = _resolve_system(entry["system"], base, where)
-        definition = {"kind": "system", "name": name, "file": _file_digest(path), "settings": settings}
-        return PairTask(name, "system", str(path), {}, settings, python_path, _content_hash(definition))
+        definition = {"kind": "system", "name": name, "file": _file_digest(path), "settings": settings, **labels}
+        return PairTask(name, "system", str(path), {}, settings, python_path, _content_hash(definition), states)
     target = entry["factory"]
     if not isinstance(target, str) or not FACTORY_PATTERN.fullmatch(target):
         got = "a string not of that form" if isinstance(target, str) else _kind(target)
         raise BatchError(f"{where}.factory: expected 'module:function' (e.g. 'examples.restraint_scan:"
                          f"probe_restraint'), got {got}")
     definition = {"kind": "factory", "name": name, "factory": target, "parameters": parameters,
-                  "source": _factory_source_digest(target, python_path), "settings": settings}
-    return PairTask(name, "factory", target, dict(parameters), settings, python_path, _content_hash(definition))
+                  "source": _factory_source_digest(target, python_path), "settings": settings, **labels}
+    return PairTask(name, "factory", target, dict(parameters), settings, python_path, _content_hash(definition),
+                    states)
+
+
+def _pair_states(entry: dict, where: str) -> tuple[str, str] | None:
+    """The optional ``states = ["first", "second"]`` of a pair: two different non-empty labels."""
+    states = entry.get("states")
+    if states is None:
+        return None
+    if (not isinstance(states, list) or len(states) != 2 or not all(isinstance(s, str) and s.strip() for s in states)
+            or states[0] == states[1]):
+        raise BatchError(f"{where}.states: expected two different state labels, e.g. states = [\"apo\", \"bound\"] "
+                         "(ΔF = F(second) − F(first))")
+    return states[0], states[1]
 
 
 def _fill_template(template: str, fill: dict[str, Any], where: str) -> str:
@@ -390,6 +410,9 @@ def _scan_tasks(scan: Any, where: str, defaults: dict, base: pathlib.Path,
         entry = {k: v for k, v in scan.items() if k not in ("vary", "seeds")}
         entry["name"] = _fill_template(scan.get("name", ""), point if seed is None else {**point, "seed": seed}, where)
         entry["parameters"] = {**fixed, **point}
+        if isinstance(scan.get("states"), list):
+            filled = point if seed is None else {**point, "seed": seed}
+            entry["states"] = [_fill_template(t, filled, f"{where}.states") for t in scan["states"]]
         if seed is not None:
             entry["seed"] = seed
         tasks.append(_make_task(entry, where, defaults, base, python_path))
@@ -555,6 +578,8 @@ def _failure_row(task: PairTask, outcome: str, message: str) -> dict[str, Any]:
     row: dict[str, Any] = {c: None for c in COLUMNS}
     row.update(name=task.name, hash=task.content_hash, source=task.target, status=outcome,
                error=" ".join(message.split())[:MAX_ERROR_LENGTH], seconds=0.0)
+    if task.states:
+        row.update(state_a=task.states[0], state_b=task.states[1])
     return row
 
 
@@ -943,6 +968,8 @@ def _parser() -> argparse.ArgumentParser:
                    help="keep pairs that ended in bad input or internal error instead of running them again")
     p.add_argument("--plot", action="store_true", help="also write batch_summary.png into the results folder")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--reference", metavar="STATE",
+                   help="state set to 0 in the network of pairs (pairs with states = [...]; default: the first)")
     return p
 
 
@@ -990,6 +1017,15 @@ def main_batch(argv: list[str] | None = None) -> int:
             _say(f"internal error: the summary plot failed: {_describe(err)}")
             return EXIT_INTERNAL
         print(f"plot written to {path}")
+    if any(row.get("state_a") for row in summary.rows):   # pairs name states: they form a network
+        from .network import NetworkError
+        from .network_command import report_batch_network
+
+        try:
+            return max(summary.exit_code, report_batch_network(summary.results_dir, reference=args.reference))
+        except NetworkError as err:   # the pairs are written; only the network is refused
+            _say(f"error: network of pairs: {err}")
+            return max(summary.exit_code, EXIT_BAD_INPUT)
     return summary.exit_code
 
 

@@ -1,4 +1,4 @@
-"""Command line: ``fe-tool run SYSTEM``, ``check``, ``list``, ``compare SYSTEM``, ``batch FILE``.
+"""Command line: ``fe-tool run SYSTEM``, ``check``, ``list``, ``compare SYSTEM``, ``batch FILE``, ``network DIR``.
 
 The CLI uses only the public API (:func:`fe_tool.estimate` through system files). Every
 command exits with the codes of :mod:`fe_tool.exitcodes`: 0 ok, 1 flagged (or a failed
@@ -69,6 +69,8 @@ def _parser() -> argparse.ArgumentParser:
 
     sub.add_parser("list", help="list the bundled systems")
     sub.add_parser("batch", help="run a batch file of many pairs (see `fe-tool batch --help`)", add_help=False)
+    sub.add_parser("network", help="state values from a batch's pairs that name their states "
+                                   "(see `fe-tool network --help`)", add_help=False)
 
     compare = sub.add_parser("compare", help="compare routes at equal budget over repeated seeds",
                              epilog=_exit_code_text())
@@ -194,6 +196,10 @@ def main(argv: list[str] | None = None) -> int:
         from .batch import main_batch
 
         return main_batch(argv[1:])
+    if argv and argv[0] == "network":  # so does the network of a batch's pairs
+        from .network_command import main_network
+
+        return main_network(argv[1:])
     args = _parser().parse_args(argv)
     try:
         return {"run": _run, "check": _check, "list": _list, "compare": _compare}[args.command](args)
