@@ -187,6 +187,14 @@ class StateSamples:
     shadow_work_per_step: float = 0.0
     neighbour_list_grown: int = 0
 
+    @property
+    def overdamped_step(self) -> float:
+        """The step of overdamped Langevin equivalent to this sampler's: MALA's ε itself; for the
+        kinetic kernels h²/2, since one velocity-Verlet step from fresh momenta is a Langevin
+        proposal with ε = h²/2 (common practice; e.g. Neal 2011, Handbook of MCMC ch. 5, from
+        memory). Switching steps are scaled from it."""
+        return self.step_size if self.kernel == "mala" else 0.5 * self.step_size ** 2
+
     def diagnostics(self) -> dict:
         return {
             "acceptance": self.acceptance,

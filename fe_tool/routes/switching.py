@@ -135,7 +135,7 @@ def choose_headline(estimates: dict, overlap: float, work_forward: np.ndarray,
 
 def _switching_step_sizes(lams: np.ndarray, samples_a: StateSamples, samples_b: StateSamples, scale: float) -> np.ndarray:
     mid = 0.5 * (lams[:-1] + lams[1:])
-    log_eps = (1 - mid) * math.log(samples_a.step_size) + mid * math.log(samples_b.step_size)
+    log_eps = (1 - mid) * math.log(samples_a.overdamped_step) + mid * math.log(samples_b.overdamped_step)
     return scale * np.exp(log_eps)
 
 
@@ -203,7 +203,7 @@ def _sample_ends(keys, path, x_a, x_b, starts, opts: Options, plan: SwitchingBud
         s = sample_state(k_end, end_target(path, end), x0, samples=samples_wanted, chains=plan.chains,
                          evaluation_budget=int(plan.sampling_cap), precondition=opts.precondition,
                          name=f"end state {end.upper()}", starts=starts[end], on_spent=ledger.spend,
-                         kernel=sampling_kernel(opts))
+                         kernel=sampling_kernel(opts, x0))
         sampled[end] = s
         ledger.cost[f"sampling_{end}"] = s.evaluations
         ledger.warnings.extend(s.warnings)

@@ -348,7 +348,7 @@ class WindowsPlan:
 
 def plan_windows(path: Path, opts: Options, budget: int) -> WindowsPlan:
     """The ladder, chains and budget split of a windows run; refuses a budget that cannot work."""
-    if opts.exchange and sampling_kernel(opts) != "mala":
+    if opts.exchange and opts.sampler not in ("auto", "mala"):
         raise InputError(f"exchange=True moves replicas with MALA steps, but sampler={opts.sampler!r}: "
                          "use sampler='mala' (or 'auto') with exchange, or exchange=False.")
     windows = opts.windows
@@ -582,7 +582,7 @@ def run_windows(path, x_a, x_b, kT: float, seed: int, starts, opts: Options, pla
     ledger.meter.stage(f"sampling {plan.count} windows")
     t0 = time.perf_counter()
     sampled = _sample_windows(k_windows, path, plan, x_a, x_b, starts, opts.window_starts, ledger,
-                              kernel=sampling_kernel(opts))
+                              kernel=sampling_kernel(opts, x_a))
     exchange_info: dict[str, Any] = {}
     if opts.exchange:
         ledger.timings["sampling"] = time.perf_counter() - t0
