@@ -175,6 +175,8 @@ def _compare(args) -> int:
 
 
 def _list(args) -> int:
+    from .systemfile import first_sentence
+
     systems = list_systems()
     if not systems:
         print(f"no bundled systems found in {bundled_systems_folder()} (set FE_TOOL_SYSTEMS to the catalogue folder)")
@@ -183,8 +185,7 @@ def _list(args) -> int:
         try:
             s = load_system(path)
             ref = f"reference {s.reference['delta_f']:.4f} {s.units}" if s.reference else "no reference"
-            first = " ".join(s.description.split()) if s.description else ""
-            print(f"{path.stem:<32s} {ref:<34s} {first}")
+            print(f"{path.stem:<32s} {ref:<34s} {first_sentence(s.description)}")   # the whole first sentence
         except SystemFileError as err:
             print(f"{path.stem:<32s} INVALID: {err}")
     return EXIT_OK

@@ -5,10 +5,11 @@ Mohr, Newell & Taylor, Rev. Mod. Phys. 93, 025010 (2021); SI Brochure, 9th ed., 
 Every other module takes its constants from here, so a result can always state which
 constant set it used (:data:`CONSTANT_SET`).
 
-Two unit systems are described by :class:`UnitSystem`:
+Three unit systems are described by :class:`UnitSystem`:
 
 * ``"kJ/mol-nm-K"``: energies in kJ/mol, lengths in nm, temperatures in K, charges in
   elementary charges; kT = R T.
+* ``"kcal/mol-nm-K"``: the same with energies in kcal/mol (1 kcal = 4.184 kJ).
 * ``"reduced"``: Lennard-Jones reduced units (energy ε, length σ, temperature ε/k_B);
   kT = T*, and the Coulomb constant is 1.
 
@@ -61,6 +62,8 @@ COULOMB_CONSTANT_KJ_NM_PER_MOL_E2 = (
 
 The Coulomb energy of two charges q_i, q_j (in e) at distance r (in nm) is f q_i q_j / r in kJ/mol.
 """
+COULOMB_CONSTANT_KCAL_NM_PER_MOL_E2 = COULOMB_CONSTANT_KJ_NM_PER_MOL_E2 / CALORIE_J
+"""f in kcal mol⁻¹ nm e⁻² ≈ 33.2063713 (the same constant, energies in kcal/mol)."""
 
 ENERGY_UNITS = ("kJ/mol", "kcal/mol")
 
@@ -115,7 +118,7 @@ class UnitSystem:
     """The units an energy model, a system file or a result is expressed in.
 
     Attributes:
-        name: the JSON-able identifier (``"kJ/mol-nm-K"`` or ``"reduced"``).
+        name: the JSON-able identifier (``"kJ/mol-nm-K"``, ``"kcal/mol-nm-K"`` or ``"reduced"``).
         energy: name of the energy unit.
         length: name of the length unit.
         temperature: name of the temperature unit.
@@ -151,6 +154,16 @@ KJ_MOL_NM_K = UnitSystem(
     coulomb_constant=COULOMB_CONSTANT_KJ_NM_PER_MOL_E2,
 )
 
+KCAL_MOL_NM_K = UnitSystem(
+    name="kcal/mol-nm-K",
+    energy="kcal/mol",
+    length="nm",
+    temperature="K",
+    charge="e",
+    boltzmann=GAS_CONSTANT_KCAL_PER_MOL_K,
+    coulomb_constant=COULOMB_CONSTANT_KCAL_NM_PER_MOL_E2,
+)
+
 REDUCED = UnitSystem(
     name="reduced",
     energy="epsilon",
@@ -161,11 +174,11 @@ REDUCED = UnitSystem(
     coulomb_constant=1.0,
 )
 
-UNIT_SYSTEMS = {system.name: system for system in (KJ_MOL_NM_K, REDUCED)}
+UNIT_SYSTEMS = {system.name: system for system in (KJ_MOL_NM_K, KCAL_MOL_NM_K, REDUCED)}
 
 
 def unit_system(name: str) -> UnitSystem:
-    """Look up a :class:`UnitSystem` by its name (``"kJ/mol-nm-K"`` or ``"reduced"``)."""
+    """Look up a :class:`UnitSystem` by its name (``"kJ/mol-nm-K"``, ``"kcal/mol-nm-K"`` or ``"reduced"``)."""
     try:
         return UNIT_SYSTEMS[name]
     except KeyError:
@@ -176,9 +189,9 @@ def unit_system(name: str) -> UnitSystem:
 
 __all__ = [
     "AVOGADRO_PER_MOL", "BOLTZMANN_J_PER_K", "CALORIE_J", "CONSTANT_SET",
-    "COULOMB_CONSTANT_KJ_NM_PER_MOL_E2", "ELEMENTARY_CHARGE_C", "ENERGY_UNITS",
+    "COULOMB_CONSTANT_KCAL_NM_PER_MOL_E2", "COULOMB_CONSTANT_KJ_NM_PER_MOL_E2", "ELEMENTARY_CHARGE_C", "ENERGY_UNITS",
     "GAS_CONSTANT_J_PER_MOL_K", "GAS_CONSTANT_KCAL_PER_MOL_K", "GAS_CONSTANT_KJ_PER_MOL_K",
-    "KJ_MOL_NM_K", "KJ_PER_KCAL", "REDUCED", "UNIT_SYSTEMS", "UnitSystem",
+    "KCAL_MOL_NM_K", "KJ_MOL_NM_K", "KJ_PER_KCAL", "REDUCED", "UNIT_SYSTEMS", "UnitSystem",
     "VACUUM_PERMITTIVITY_F_PER_M", "convert_energy", "gas_constant", "kcal_to_kj",
     "kj_to_kcal", "thermal_energy", "unit_system",
 ]

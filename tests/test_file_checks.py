@@ -20,7 +20,7 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
-from fe_tool import systemfile
+from fe_tool.systemfile import reader as systemfile_reader
 from fe_tool.control import (ControlFileError, ControlScales, MLPControl, check_control_fits, load_control,
                              read_control_header, save_control, system_fingerprint)
 from fe_tool.control import storage
@@ -134,17 +134,17 @@ def test_devices_folders_and_pipes_are_refused_unread(tmp_path):
 
 
 def test_size_caps_name_the_file_and_the_cap(tmp_path, monkeypatch):
-    assert systemfile.MAX_DATA_FILE_BYTES == systemfile.MAX_SYSTEM_FILE_BYTES == 64 * 2**20
+    assert systemfile_reader.MAX_DATA_FILE_BYTES == systemfile_reader.MAX_SYSTEM_FILE_BYTES == 64 * 2**20
     inner = tmp_path / "inner"
     inner.mkdir()
     big = inner / "big.xyz"
     big.write_text(GOOD_XYZ + "\n" * 2000)
     system = _system_in(inner, "big.xyz")
-    monkeypatch.setattr(systemfile, "MAX_DATA_FILE_BYTES", 1000)
+    monkeypatch.setattr(systemfile_reader, "MAX_DATA_FILE_BYTES", 1000)
     with pytest.raises(SystemFileError, match=r"particles.file: .*big\.xyz has \d+ bytes, more than the 1000 bytes "
                                               "limit"):
         load_system(system)
-    monkeypatch.setattr(systemfile, "MAX_SYSTEM_FILE_BYTES", 100)
+    monkeypatch.setattr(systemfile_reader, "MAX_SYSTEM_FILE_BYTES", 100)
     with pytest.raises(SystemFileError, match=r"system file: .*system\.toml has \d+ bytes, more than the 100 bytes"):
         load_system(system)
 
@@ -233,6 +233,9 @@ BAD_VALUES = [  # (layout, keys, value, key named in the message)
     (F, ("settings",), {"control": 1}, "settings.control"),
     (F, ("settings",), {"precondition": "yes"}, "settings.precondition"),
     (F, ("settings",), {"exchange": 1}, "settings.exchange"),
+    (F, ("settings",), {"exchange_every": "10"}, "settings.exchange_every"),
+    (F, ("settings",), {"samples_per_window": 8}, "settings.samples_per_window"),
+    (F, ("settings",), {"window_starts": 1}, "settings.window_starts"),
     (F, ("settings",), {"starts_b": [["0.5"]]}, "settings.starts_b"),
     (F, ("settings",), {"control_settings": {"learning_rate": "0.01"}}, "settings.control_settings.learning_rate"),
     (F, ("settings",), {"control_settings": {"learn_schedule": MARKER}}, "settings.control_settings.learn_schedule"),

@@ -150,12 +150,12 @@ def test_parameter_path_for_linear_parameters_is_linear_mixing_and_releases_rest
 # ------------------------------------------------------------------ the file format
 
 PROBE = {
-    "units": "kJ/mol-nm-K", "temperature": 300.0,
+    "units": "kJ/mol", "temperature": 300.0,
     "particles": {"types": ["P", "S", "S", "S"],
                   "positions": [[0.5, 0.5, 0.5], [0.9, 0.5, 0.5], [0.5, 0.9, 0.5], [0.5, 0.5, 0.9]]},
     "box": {"edges": [1.6, 1.6, 1.6]},
     "types": {"P": {"sigma": 0.3, "epsilon": 1.0, "charge": 0.5}, "S": {"sigma": 0.3, "epsilon": 0.8, "charge": -0.1}},
-    "nonbonded": {"cutoff": 0.7, "tail_correction": True, "reaction_field_dielectric": 78.0},
+    "nonbonded": {"cutoff": 0.7, "tail_correction": True, "reaction_field": {"outer_permittivity": 78.0}},
     "topology": {"torsions": [{"name": "t", "atoms": [[0, 1, 2, 3]], "form": "periodic",
                                "force_constants": [2.0], "multiplicities": [3], "phases": [0.0]}]},
     "restraints": [{"name": "anchor", "form": "position", "atoms": [0], "force_constant": 500.0, "state": "a"}],
@@ -179,7 +179,7 @@ def test_probe_file_builds_the_staged_path_with_explicit_units():
 
 @pytest.mark.parametrize("keys, value, message", [
     (("units",), KeyError, "units"),
-    (("units",), "kcal/mol", "units"),
+    (("units",), "kJ/mol-nm", "units"),
     (("particles", "positions"), [[0.0, 0.0]], "particles.positions"),
     (("particles", "bogus"), 1, "particles: unknown key"),
     (("types", "S"), KeyError, "types.S"),

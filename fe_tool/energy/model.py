@@ -338,7 +338,7 @@ class EnergyModel(eqx.Module):
     Attributes:
         terms: the terms, each with a distinct ``name``.
         box: periodic box edge lengths, or ``None``.
-        units: unit-system name (``"kJ/mol-nm-K"`` or ``"reduced"``), see :mod:`fe_tool.units`.
+        units: unit-system name (``"kJ/mol-nm-K"``, ``"kcal/mol-nm-K"`` or ``"reduced"``), see :mod:`fe_tool.units`.
     """
 
     terms: tuple[Term, ...]
