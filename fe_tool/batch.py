@@ -1009,10 +1009,10 @@ def main_batch(argv: list[str] | None = None) -> int:
         return EXIT_INTERNAL
     _report(summary)
     if args.plot:
-        from .plots import plot_batch_summary
+        from .plots import draw_batch_summary
 
         try:
-            path = plot_batch_summary(summary.rows, summary.results_dir / "batch_summary.png")
+            path = draw_batch_summary(summary.rows, summary.results_dir / "batch_summary.png", title=summary.name)
         except Exception as err:  # the table is written; only the picture failed
             _say(f"internal error: the summary plot failed: {_describe(err)}")
             return EXIT_INTERNAL

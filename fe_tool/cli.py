@@ -57,7 +57,13 @@ def _parser() -> argparse.ArgumentParser:
     run.add_argument("--save-control", dest="save_control", metavar="FILE", help="save a trained control to FILE")
     run.add_argument("--kcal", action="store_true", help="report kJ/mol systems in kcal/mol")
     run.add_argument("--quiet", action="store_true", help="no progress bars")
-    run.add_argument("--plot", metavar="DIR", help="write PNG plots (work distributions, convergence, dissipation) to DIR")
+    run.add_argument("--plot", metavar="DIR",
+                     help="write PNG figures (work distributions, ΔF against the number of trajectories, "
+                          "work along λ) to DIR, in the result's units")
+    run.add_argument("--plot-in-kT", dest="plot_in_kT", action="store_true",
+                     help="draw the figures in kT instead of the result's units")
+    run.add_argument("--plot-caution", dest="plot_caution", action="store_true",
+                     help="add the caution about simulated free energies to each figure as a footnote")
     run.add_argument("--allow-outside-files", action="store_true",
                      help="let the system file read data files outside its own folder")
 
@@ -123,6 +129,7 @@ def _run(args) -> int:
         print("  " + system.description.strip().replace("\n", "\n  "))
     print()
     result = system.estimate(**overrides)
+    result.settings.setdefault("system", system.name)   # figure titles name the system
     if args.kcal and system.units == "kJ/mol":
         from .units import convert_energy
         result = result.converted("kcal/mol", convert_energy(1.0, "kJ/mol", "kcal/mol"))
@@ -133,10 +140,10 @@ def _run(args) -> int:
     if args.json:
         print(f"\nfull result written to {args.json}")
     if args.plot:
-        from .plots import plot_result
+        from .plots import draw_result
 
-        written = plot_result(result, args.plot)
-        print(f"\nplots written: {', '.join(str(p) for p in written)}")
+        written = draw_result(result, args.plot, in_kT=args.plot_in_kT, caution=args.plot_caution)
+        print(f"\nfigures written: {', '.join(str(p) for p in written)}")
     return EXIT_FLAGGED if result.flagged else EXIT_OK
 
 

@@ -361,13 +361,27 @@ def _estimate_stage(work_forward, work_reverse, sampled, seed: int, ledger: Ledg
     return estimates, headline, reason, overlap, weight_info
 
 
+def _work_per_step(inc_forward, steps: int) -> tuple[np.ndarray, list[float]]:
+    """Mean forward work of each switching step (kT) over the trajectories with every step's work
+    finite, and the standard error of that mean (sample standard deviation / √n; NaN below 2
+    trajectories) as a list of floats for the result's extras."""
+    inc_forward = np.asarray(inc_forward)
+    healthy = inc_forward[np.isfinite(inc_forward).all(axis=1)]
+    if healthy.shape[0] == 0:
+        return np.full(steps, np.nan), [math.nan] * steps
+    mean = healthy.mean(axis=0)
+    if healthy.shape[0] < 2:
+        return mean, [math.nan] * steps
+    stderr = healthy.std(axis=0, ddof=1) / math.sqrt(healthy.shape[0])
+    return mean, [float(v) for v in stderr]
+
+
 def _report(path, opts: Options, kT, seed, budget, plan: SwitchingBudget, sampled, protocol, points, lams,
             step_sizes, works, inc_forward, control_report, estimates, headline, reason, overlap, weight_info,
             ledger: Ledger) -> Result:
     work_forward, work_reverse = works
     steps = len(lams) - 1
-    healthy = np.isfinite(inc_forward).all(axis=1)   # trajectories with every step's work finite
-    work_per_step = inc_forward[healthy].mean(axis=0) if healthy.any() else np.full(steps, np.nan)
+    work_per_step, work_per_step_stderr = _work_per_step(inc_forward, steps)
     samples_a, samples_b = sampled["a"], sampled["b"]
     settings = {
         "switching_steps": steps, "trajectories": int(work_forward.size),
@@ -387,7 +401,8 @@ def _report(path, opts: Options, kT, seed, budget, plan: SwitchingBudget, sample
         **weight_info,
     }
     head = estimates[headline]
-    extras = {"lambdas": lams, "work_per_step_forward": work_per_step}
+    extras = {"lambdas": lams, "work_per_step_forward": work_per_step,
+              "work_per_step_forward_stderr": work_per_step_stderr}
     if control_report:
         extras.update(control=control_report, control_decision=control_report.get("decision", ""))
     return Result(
