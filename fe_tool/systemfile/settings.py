@@ -16,7 +16,7 @@ from .reader import (SystemFileError, check_keys, fail, finite, number, numeric_
 # the type each estimate() option takes in a file (whole numbers with their minimum)
 WHOLE_NUMBER_SETTINGS = {"budget": 1, "switching_steps": 1, "trajectories": 2, "chains": 4, "seed": 0,
                          "exchange_every": 1, "samples_per_window": 16}
-TEXT_SETTINGS = ("method", "spacing", "units", "window_starts")
+TEXT_SETTINGS = ("method", "spacing", "units", "window_starts", "sampler")
 SWITCH_SETTINGS = ("exchange", "precondition", "progress")
 NOT_IN_FILES = {"path": "a path object cannot be written in a file; describe the change in [change]",
                 "reference": "give the known answer in a [reference] table"}
