@@ -8,7 +8,7 @@ edges; failed pairs are left out and listed.  Written into the results folder:
 - ``network_states.csv`` and ``network.json``: state values ± errors (and in the JSON the full
   covariance, every pair's check, the cycles, the χ² test, warnings and the suggested next pairs);
 - ``network_cycles.csv``: every independent cycle's closure and its expected spread;
-- ``network.png``: the picture (:func:`fe_tool.network_plot.plot_network`).
+- ``network.png``: the picture (:func:`fe_tool.network_plot.draw_network`).
 
 Pairs computed by fe_tool are independent (each samples its own end states), so the network
 treats them as uncorrelated.
@@ -99,9 +99,9 @@ def write_network_outputs(report: NetworkReport, folder: str | pathlib.Path, sug
         write_text_atomically(folder / name, text)
         written.append(folder / name)
     if plot:
-        from .network_plot import plot_network
+        from .network_plot import draw_network
 
-        written.append(plot_network(report, folder / "network.png"))
+        written.append(draw_network(report, folder / "network.png"))
     return written
 
 

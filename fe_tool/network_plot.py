@@ -14,7 +14,7 @@ import numpy as np
 
 from .network import NetworkReport
 
-__all__ = ["plot_network"]
+__all__ = ["draw_network"]
 
 LABEL_POSITIONS = (0.5, 0.36, 0.64, 0.26, 0.74)   # fractions along an arrow tried for its label, in order
 
@@ -52,13 +52,15 @@ def _style(report: NetworkReport, check) -> dict:
     return dict(color="0.25", linestyle="-", linewidth=1.3)
 
 
-def plot_network(report: NetworkReport, target=None, *, title: str | None = None):
-    """Draw the network; ``target`` is a PNG path (written, path returned) or an Axes (returned)."""
+def draw_network(report: NetworkReport, target=None, *, title: str | None = None, caution: bool = False):
+    """Draw the network; ``target`` is a PNG path (written, path returned) or an Axes (returned).
+    ``caution=True`` prints the caution about simulated free energies under the figure (it is
+    always in the text report)."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
     from matplotlib.lines import Line2D
 
-    from .plots import FOOTNOTE
+    from .results import CAUTION
 
     positions = _layout(report)
     own = target is None or not hasattr(target, "annotate")
@@ -99,8 +101,9 @@ def plot_network(report: NetworkReport, target=None, *, title: str | None = None
     ax.axis("off")
     if not own:
         return ax
-    fig.text(0.5, 0.005, FOOTNOTE, ha="center", va="bottom", fontsize=6.5, color="0.35", wrap=True)
-    fig.tight_layout(rect=(0, 0.04, 1, 1))
+    if caution:
+        fig.text(0.5, 0.005, CAUTION, ha="center", va="bottom", fontsize=6.5, color="0.35", wrap=True)
+    fig.tight_layout(rect=(0, 0.04 if caution else 0.0, 1, 1))
     path = pathlib.Path(target if target is not None else "network.png")
     path.parent.mkdir(parents=True, exist_ok=True)
     fig.savefig(path, dpi=110)

@@ -48,6 +48,8 @@ class Path(eqx.Module):
 
     def energy_and_grad(self, x: Configuration, lam: Array, neighbours=None) -> tuple[Array, Array]:
         """Reduced energy u(x, λ) and its gradient with respect to x."""
+        if neighbours is None:   # a user's Path may define energy(x, lam) only
+            return jax.value_and_grad(lambda y: self.energy(y, lam))(x)
         return jax.value_and_grad(self.energy)(x, lam, neighbours)
 
     def dynamics_neighbour_builder(self):
@@ -72,7 +74,8 @@ class Path(eqx.Module):
 
     def end_energy(self, x: Configuration, end: str, neighbours=None) -> Array:
         """Reduced energy of end state ``"a"`` (λ = 0) or ``"b"`` (λ = 1)."""
-        return self.energy(x, jnp.asarray(0.0 if end == "a" else 1.0), neighbours)
+        lam = jnp.asarray(0.0 if end == "a" else 1.0)
+        return self.energy(x, lam) if neighbours is None else self.energy(x, lam, neighbours)
 
     def end_evaluations(self) -> int:
         """Evaluations per point for one end state's energy and gradient."""

@@ -536,7 +536,7 @@ def _chain_correlated_works(generator, delta_f, spread, chains, per_chain, share
     return side(delta_f + spread**2 / 2), side(-delta_f + spread**2 / 2)
 
 
-@pytest.mark.parametrize("share", [0.0, 0.15])
+@pytest.mark.parametrize("share", [pytest.param(0.0, marks=pytest.mark.slow), 0.15])
 def test_chain_grouped_jackknife_error_covers_correlated_works(share):
     """Coverage against the brute-force spread of 300 independent replicates (the reference).
 

@@ -157,6 +157,7 @@ def test_works_stay_exact_with_a_fixed_pair_control(key):
 # ---------------------------------------------------------------- (4) training helps on a small LJ decoupling
 
 
+@pytest.mark.slow
 def test_training_reduces_forward_work_spread_on_lj_decoupling(key):
     from fe_tool.sampling import end_target, sample_state
     from fe_tool.systemfile import parse_system

@@ -21,11 +21,15 @@ class Target(eqx.Module):
     end: str | None = eqx.field(static=True)
 
     def energy(self, x: Configuration, neighbours=None) -> Array:
+        # without a carried list call the path as a user may have written it: energy(x, lam)
+        extra = () if neighbours is None else (neighbours,)
         if self.end is not None:
-            return self.path.end_energy(x, self.end, neighbours=neighbours)
-        return self.path.energy(x, self.lam, neighbours=neighbours)
+            return self.path.end_energy(x, self.end, *extra)
+        return self.path.energy(x, self.lam, *extra)
 
     def energy_and_grad(self, x: Configuration, neighbours=None) -> tuple[Array, Array]:
+        if neighbours is None:
+            return jax.value_and_grad(self.energy)(x)
         return jax.value_and_grad(self.energy)(x, neighbours)
 
     def evaluations(self) -> int:
