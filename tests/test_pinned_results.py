@@ -51,7 +51,8 @@ def run(case):
     return small_fluid().estimate(seed=3, budget=150_000, progress=False)
 
 
-@pytest.mark.parametrize("case", sorted(PINS))
+@pytest.mark.parametrize("case", [pytest.param(c, marks=[pytest.mark.slow] if c == "switching-learned" else [])
+                                  for c in sorted(PINS)])
 def test_same_seed_gives_the_pinned_result(case):
     result = run(case)
     print(f"{case}: {result.delta_f!r} ± {result.stderr!r}, {result.energy_evaluations} evaluations")
