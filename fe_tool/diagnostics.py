@@ -103,10 +103,24 @@ def check_headline(estimate: Estimate, headline: str) -> tuple[list[str], bool]:
     return [f"the headline {headline} estimate is unreliable: {reason}."], True
 
 
+def _chain_inflation(estimates: dict[str, Estimate]) -> float:
+    """How much larger than the independent-work error BAR's chain-grouped error came out (≥ 1).
+
+    Works started from one sampling chain are correlated; that correlation inflates every
+    estimator's error, not only BAR's, so the one-sided averages' independent-work errors are
+    scaled by the same factor before they are compared (``chain_error_ratio`` from
+    :func:`fe_tool.estimators.grouped.with_grouped_error`)."""
+    bar = estimates.get("bar")
+    ratio = bar.details.get("chain_error_ratio", 1.0) if bar is not None else 1.0
+    return float(ratio) if ratio is not None and math.isfinite(ratio) and ratio > 1.0 else 1.0
+
+
 def check_agreement(estimates: dict[str, Estimate], headline: str, threshold: float = 3.0) -> tuple[list[str], bool]:
     """Compare every estimator with the headline.
 
-    A disagreement flags the result only when the disagreeing estimator is itself judged
+    Errors of estimators computed as if the works were independent are scaled by the chain
+    correlation BAR's grouped error measured (:func:`_chain_inflation`). A disagreement flags
+    the result only when the disagreeing estimator is itself judged
     reliable by its own diagnostics (:func:`is_reliable`; the Crooks Gaussian fit never, as it
     assumes Gaussian works); otherwise it is shown as information. A one-sided exponential
     average is known to be biased in its own direction when its weights have a heavy tail, so
@@ -114,10 +128,12 @@ def check_agreement(estimates: dict[str, Estimate], headline: str, threshold: fl
     """
     msgs, serious = [], False
     ref = estimates[headline]
+    grouped = _chain_inflation(estimates)
+    own = lambda e: e.stderr * (1.0 if "stderr_chain_jackknife" in e.details else grouped)  # noqa: E731
     for name, est in estimates.items():
         if name == headline or not (math.isfinite(est.delta_f) and math.isfinite(ref.delta_f)):
             continue
-        scale = math.hypot(est.stderr, ref.stderr) if est.is_finite else math.nan
+        scale = math.hypot(own(est), own(ref)) if est.is_finite else math.nan
         if not (scale > 0) or abs(est.delta_f - ref.delta_f) <= threshold * scale:
             if not is_reliable(est) and name.startswith("jarzynski"):
                 msgs.append(f"{name} ({est.delta_f:.3f} kT) is shown for information only: "
@@ -135,7 +151,7 @@ def check_agreement(estimates: dict[str, Estimate], headline: str, threshold: fl
             serious = True
     f, r = estimates.get("jarzynski_forward"), estimates.get("jarzynski_reverse")
     if f is not None and r is not None and is_reliable(f) and is_reliable(r):
-        scale = math.hypot(f.stderr, r.stderr)
+        scale = math.hypot(own(f), own(r))
         if scale > 0 and abs(f.delta_f - r.delta_f) > threshold * scale:
             msgs.append(f"forward and reverse Jarzynski estimates disagree ({f.delta_f:.3f} vs "
                         f"{r.delta_f:.3f} kT, {abs(f.delta_f - r.delta_f) / scale:.1f} combined errors).")

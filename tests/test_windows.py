@@ -77,6 +77,7 @@ def test_exchange_reports_acceptance():
     assert abs(r.delta_f - math.log(2.0)) < max(0.1, 4 * r.stderr), r.summary()
 
 
+@pytest.mark.slow   # compare_routes also runs in benchmarks/bench_routes.py and the windows notebook
 def test_compare_routes_small():
     ea, eb, xa, xb = harmonic_pair(1, 1.0, 4.0, [1.5])
     rows, text = compare_routes(ea, eb, xa, xb, exact=math.log(2.0), budget=80_000, seeds=(0, 1),

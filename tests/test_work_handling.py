@@ -127,3 +127,18 @@ def test_pareto_shape_estimate_against_known_generalised_pareto(shape):
     sample = stats.genpareto.rvs(shape, size=400, random_state=np.random.default_rng(int(shape * 10) + 3))
     estimate, _ = generalised_pareto_fit(sample)
     assert abs(estimate - shape) < 0.3
+
+
+def test_chain_correlation_widens_the_one_sided_comparison():
+    """Works from one sampling chain are correlated; BAR's chain-grouped error measures by how
+    much (ratio 1.5 here), and the one-sided averages' independent-work errors are widened by
+    the same factor before they are compared. A gap of 4.0 independent-work errors is then
+    2.7 grouped errors (not flagged at 3); a gap of 6.0 is 4.0 (flagged)."""
+    bar = Estimate(0.0, 0.15, "bar", "jackknife", 1000, {"stderr_chain_jackknife": 0.15, "chain_error_ratio": 1.5})
+    for gap, flagged in ((4.0, False), (6.0, True)):
+        se = 0.1 / math.sqrt(2.0)
+        forward = Estimate(+gap * 0.05, se, "jarzynski", "bias-aware", 500, {})
+        reverse = Estimate(-gap * 0.05, se, "jarzynski", "bias-aware", 500, {})
+        msgs, serious = check_agreement({"bar": bar, "jarzynski_forward": forward, "jarzynski_reverse": reverse},
+                                        "bar")
+        assert serious is flagged, (gap, msgs)
