@@ -25,3 +25,19 @@ def _release_compiled_code():
     """
     yield
     jax.clear_caches()
+
+
+@pytest.fixture
+def saved_figures(monkeypatch):
+    """Every matplotlib Figure written by savefig during a test, in order."""
+    from matplotlib.figure import Figure
+
+    saved = []
+    original = Figure.savefig
+
+    def spy(self, *args, **kwargs):
+        saved.append(self)
+        return original(self, *args, **kwargs)
+
+    monkeypatch.setattr(Figure, "savefig", spy)
+    return saved

@@ -99,7 +99,7 @@ def beta_excess_chemical_potential(residual_free_energy, temperature, density):
 
 
 def test_equations_of_state_reproduce_the_published_check_values():
-    # KN check values of a public transcription, quoted in docs/references.md §9b (reproduced to 1e-7 relative there)
+    # KN check values quoted in docs/references.md §9b (reproduced to 1e-7 relative there)
     u = lambda t, rho: kn_residual_free_energy(t, rho) - t * jax.grad(kn_residual_free_energy, 0)(t, rho)  # noqa: E731
     p = lambda t, rho: rho * t + rho**2 * jax.grad(kn_residual_free_energy, 1)(t, rho)  # noqa: E731
     assert float(u(1.3, 0.2)) == pytest.approx(-1.53715, abs=2e-5)

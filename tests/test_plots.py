@@ -80,20 +80,6 @@ def _bennett(wf, wr):
     return brentq(imbalance, -50, 50, xtol=1e-12)
 
 
-@pytest.fixture
-def saved_figures(monkeypatch):
-    """Every Figure written by savefig during a test, in order."""
-    saved = []
-    original = Figure.savefig
-
-    def spy(self, *args, **kwargs):
-        saved.append(self)
-        return original(self, *args, **kwargs)
-
-    monkeypatch.setattr(Figure, "savefig", spy)
-    return saved
-
-
 # ------------------------------------------------------------------ units, titles, caution
 
 def test_every_figure_of_a_kJ_per_mol_result_is_written_and_labelled_in_kJ_per_mol(tmp_path, saved_figures):

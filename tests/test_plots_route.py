@@ -10,7 +10,6 @@ import math
 import numpy as np
 import pytest
 from matplotlib.collections import PolyCollection
-from matplotlib.figure import Figure
 
 from fe_tool import plots
 from fe_tool.cli import main
@@ -31,15 +30,8 @@ def _check_work_per_step(data):
     assert wf.std(ddof=1) / math.sqrt(wf.size) <= sum(stderr) * (1 + 1e-4) + 1e-9
 
 
-def test_cli_plot_in_the_reported_units_titled_with_the_system_with_a_band_along_lambda(tmp_path, monkeypatch, capsys):
-    saved = []
-    original = Figure.savefig
-
-    def spy(self, *args, **kwargs):
-        saved.append(self)
-        return original(self, *args, **kwargs)
-
-    monkeypatch.setattr(Figure, "savefig", spy)
+def test_cli_plot_in_the_reported_units_titled_with_the_system_with_a_band_along_lambda(tmp_path, saved_figures, capsys):
+    saved = saved_figures
     folder, saved_json = tmp_path / "figures", tmp_path / "result.json"
     # warnings are errors here: a FutureWarning from an old plot name would end the run with code 3
     code = main(["run", "restraint_release_kjmol", "--steps", str(STEPS), "--trajectories", str(TRAJECTORIES),

@@ -139,6 +139,21 @@ def _switching_step_sizes(lams: np.ndarray, samples_a: StateSamples, samples_b: 
     return scale * np.exp(log_eps)
 
 
+def _pilot_both_ways(path, key, samples_a, samples_b, precision_a, precision_b, lams, scale, n, cost, on_spent):
+    """``n`` uncontrolled trajectories each way on ``lams`` at one step scale, booked to ``cost["pilot"]``.
+
+    Returns ``(next key, (forward works, increments), (reverse works, increments))``.
+    """
+    eps = _switching_step_sizes(lams, samples_a, samples_b, scale)
+    kf, kr, key = jax.random.split(key, 3)
+    forward = run_in_batches(path, None, kf, samples_a.samples[:n], lams, eps, precision_a, precision_b,
+                             "forward", n, on_spent)[:2]
+    reverse = run_in_batches(path, None, kr, samples_b.samples[:n], lams, eps, precision_a, precision_b,
+                             "reverse", n, on_spent)[:2]
+    cost["pilot"] += 2 * switching_evaluations_padded(path, n, len(lams) - 1, n)
+    return key, forward, reverse
+
+
 def _schedule_pilot(path, key, samples_a, samples_b, precision_a, precision_b, cost, scales, trajectories=64,
                     tries: int = 2, on_spent=None):
     """Pilot on the linear schedule; return (λ grid, normalised length profile) for an adaptive schedule."""
@@ -147,13 +162,8 @@ def _schedule_pilot(path, key, samples_a, samples_b, precision_a, precision_b, c
     variance = np.full(PILOT_STEPS, np.nan)
     # a moderate step first (the largest pilot step is the one most likely to blow up), then smaller
     for scale in ([s for s in scales if s <= 0.5] or list(scales))[:tries]:
-        eps0 = _switching_step_sizes(lams0, samples_a, samples_b, scale)
-        kf, kr, key = jax.random.split(key, 3)
-        wf, inc_f, _ = run_in_batches(path, None, kf, samples_a.samples[:n], lams0, eps0, precision_a, precision_b,
-                                      "forward", n, on_spent)
-        wr, inc_r, _ = run_in_batches(path, None, kr, samples_b.samples[:n], lams0, eps0, precision_a, precision_b,
-                                      "reverse", n, on_spent)
-        cost["pilot"] += 2 * switching_evaluations_padded(path, n, PILOT_STEPS, n)
+        key, (_, inc_f), (_, inc_r) = _pilot_both_ways(path, key, samples_a, samples_b, precision_a, precision_b,
+                                                       lams0, scale, n, cost, on_spent)
         # trajectories whose every step is finite (one that crosses a forbidden region has ∞ − ∞ steps)
         ok_f, ok_r = np.isfinite(inc_f).all(axis=1), np.isfinite(inc_r).all(axis=1)
         if ok_f.sum() > 8 and ok_r.sum() > 8:
@@ -175,13 +185,8 @@ def step_scale_pilot(path, key, samples_a, samples_b, precision_a, precision_b, 
     steps = len(lams) - 1
     points = []
     for scale in scales:
-        eps = _switching_step_sizes(lams, samples_a, samples_b, scale)
-        kf, kr, key = jax.random.split(key, 3)
-        wf, _, _ = run_in_batches(path, None, kf, samples_a.samples[:n], lams, eps, precision_a, precision_b,
-                                  "forward", n, on_spent)
-        wr, _, _ = run_in_batches(path, None, kr, samples_b.samples[:n], lams, eps, precision_a, precision_b,
-                                  "reverse", n, on_spent)
-        cost["pilot"] += 2 * switching_evaluations_padded(path, n, steps, n)
+        key, (wf, _), (wr, _) = _pilot_both_ways(path, key, samples_a, samples_b, precision_a, precision_b,
+                                                 lams, scale, n, cost, on_spent)
         bad_f, bad_r = mark_diverged(wf), mark_diverged(wr)
         ok_f, ok_r = wf[~bad_f], wr[~bad_r]
         # medians, not means: insertion-type switching has rare overlap works of 1e3–1e30 kT that sit far
