@@ -46,6 +46,12 @@ particles. ``"neighbour_list"`` rebuilds a fixed-capacity list *inside every ene
 cells) or O(N²) otherwise, so it only pays for large N; if a configuration has more pairs
 than the capacity the energy is NaN, which the workflow counts as a diverged trajectory.
 
+**Cheap work, exact redraws.** ``path.energy_change(x, λ₁, λ₂)`` = u(x, λ₂) − u(x, λ₁) from the
+group's switched pairs (O(k·n) for k group particles), the tail and the extra terms only.
+``path.redraw_decoupled(key, x)`` moves the group rigidly to a uniformly random place and
+orientation, an exact draw at λ = 1 when ``path.can_redraw_decoupled()``; with both, zero-step
+switching from B is test-particle insertion: βμ_ex = −ln⟨exp(−energy_change(redrawn x, 1, 0))⟩_B.
+
 Example:
     >>> path = SoftCoreDecouplingPath(model, kT=2.0)          # model: alchemical Nonbonded
     >>> r = fe_tool.estimate(path.end_function("a"), path.end_function("b"), x0, x0,
