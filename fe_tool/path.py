@@ -68,6 +68,22 @@ class Path(eqx.Module):
         """∂u/∂λ at (x, λ): the integrand of thermodynamic integration."""
         return jax.grad(self.energy, argnums=1)(x, jnp.asarray(lam, dtype=jnp.result_type(float)))
 
+    def energy_change(self, x: Configuration, lam_from: Array, lam_to: Array) -> Array:
+        """u(x, λ_to) − u(x, λ_from) at one configuration: the work of an instantaneous switch.
+
+        This default makes two full energy calls; paths whose λ dependence sits in a few terms
+        (:class:`~fe_tool.alchemy.SoftCoreDecouplingPath`) override it with a cheaper sum.
+        """
+        return self.energy(x, lam_to) - self.energy(x, lam_from)
+
+    def energy_change_cost(self) -> float:
+        """Cost of one :meth:`energy_change` call in full energy evaluations (2.0 here: two calls).
+
+        Convention: a full evaluation is one call of :meth:`energy`; overrides count the work
+        they do in the same unit and never report more than this default.
+        """
+        return 2.0
+
     def evaluations_per_point(self, lambda_count: int = 1) -> int:
         """Energy evaluations needed for energies+gradients at ``lambda_count`` λ values on one point."""
         return int(lambda_count)

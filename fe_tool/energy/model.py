@@ -208,20 +208,28 @@ class Nonbonded(Term):
             pairs = self.pair_table
         else:
             pairs = neighbours
-        out = nonbonded.nonbonded_energy_parts(
-            positions, lennard_jones=self.lennard_jones, charges=self.charges, pairs=pairs,
-            box=box, cutoff=self.cutoff, lj_shift=self.lj_shift,
-            reaction_field_dielectric=self.reaction_field_dielectric, dielectric=self.dielectric,
-            coulomb_constant=self.coulomb_constant, alchemical=self.alchemical,
-            lj_coupling=lj_coupling, coulomb_scale=coulomb_scale,
-            soft_core_alpha=self.soft_core_alpha,
-            coulomb_soft_core_alpha=self.coulomb_soft_core_alpha,
-            decouple_internal=self.decouple_internal,
-        )
+        out = nonbonded.nonbonded_energy_parts(positions, pairs=pairs, box=box, lj_coupling=lj_coupling,
+                                               coulomb_scale=coulomb_scale, **self.pair_settings())
         if self.tail is not None:
-            internal = 1.0 if self.decouple_internal else lj_coupling
-            out["lj_tail"] = self.tail[0] + lj_coupling * self.tail[1] + internal * self.tail[2]
+            out["lj_tail"] = self.tail_energy(lj_coupling)
         return out
+
+    def pair_settings(self) -> dict:
+        """The keyword arguments of :func:`~fe_tool.energy.nonbonded.nonbonded_energy_parts` this
+        term fixes (all but positions, pairs, box and the two couplings)."""
+        return dict(lennard_jones=self.lennard_jones, charges=self.charges, cutoff=self.cutoff,
+                    lj_shift=self.lj_shift, reaction_field_dielectric=self.reaction_field_dielectric,
+                    dielectric=self.dielectric, coulomb_constant=self.coulomb_constant,
+                    alchemical=self.alchemical, soft_core_alpha=self.soft_core_alpha,
+                    coulomb_soft_core_alpha=self.coulomb_soft_core_alpha,
+                    decouple_internal=self.decouple_internal)
+
+    def tail_energy(self, lj_coupling=1.0):
+        """The LJ tail correction at ``lj_coupling`` (0 without one); see the class docstring."""
+        if self.tail is None:
+            return jnp.zeros(())
+        internal = 1.0 if self.decouple_internal else lj_coupling
+        return self.tail[0] + lj_coupling * self.tail[1] + internal * self.tail[2]
 
     def __call__(self, positions, **context):
         return sum(self.parts(positions, **context).values())

@@ -231,14 +231,17 @@ def nonbonded_energy_parts(
         coulomb_constant: f in energy·length/charge² (default kJ mol⁻¹ nm e⁻²).
         alchemical: (n,) boolean mask of the decoupled particles, or ``None`` (then
             ``lj_coupling`` and ``coulomb_scale`` have no effect).
-        lj_coupling: soft-core λ_LJ for alchemical–environment pairs (1 = coupled).
+        lj_coupling: soft-core λ_LJ for alchemical–environment pairs (1 = coupled); a scalar,
+            or a 1-D array of c values (then ``coulomb_scale`` is a scalar or of the same
+            shape) to get the energies at c couplings with the pair geometry computed once.
         coulomb_scale: charge-product scale for alchemical–environment pairs (1 = coupled).
         soft_core_alpha: α of the Beutler soft core (dimensionless).
         coulomb_soft_core_alpha: α_C (length²) of the Coulomb soft core; 0 = linear scaling.
         decouple_internal: if True, pairs inside the alchemical group stay fully coupled.
 
     Returns:
-        dict with scalar ``"lennard_jones"`` and ``"coulomb"`` energies (0 when absent).
+        dict with ``"lennard_jones"`` and ``"coulomb"`` energies (0 when absent): scalars, or
+        arrays of shape (c,) for c couplings given as arrays (with ``alchemical`` set).
     """
     positions = jnp.asarray(positions)
     n, dimension = positions.shape
@@ -260,6 +263,9 @@ def nonbonded_energy_parts(
         if mask.shape != (n,):
             raise ValueError(f"alchemical must be a boolean mask of shape ({n},); got {mask.shape}.")
         switched = (mask[i] != mask[j]) if decouple_internal else (mask[i] | mask[j])
+        # a trailing pair axis: couplings of shape (c,) give energies of shape (c,), scalars stay scalars
+        lj_coupling = jnp.expand_dims(jnp.asarray(lj_coupling, dtype=positions.dtype), -1)
+        coulomb_scale = jnp.expand_dims(jnp.asarray(coulomb_scale, dtype=positions.dtype), -1)
     zero = jnp.zeros((), dtype=positions.dtype)
 
     lj_energy = zero
@@ -281,7 +287,7 @@ def nonbonded_energy_parts(
             if cutoff is None:
                 raise ValueError("lj_shift=True needs a cutoff.")
             u = u - pair_energy(jnp.full_like(r2, cutoff * cutoff))
-        lj_energy = jnp.sum(jnp.where(inside, u, 0.0))
+        lj_energy = jnp.sum(jnp.where(inside, u, 0.0), axis=-1)
 
     coulomb = zero
     if charges is not None:
@@ -300,7 +306,7 @@ def nonbonded_energy_parts(
             k_rf, c_rf = reaction_field_constants(cutoff, reaction_field_dielectric, dielectric)
             radial = radial + k_rf * r2_eff - c_rf
         u = (coulomb_constant / dielectric) * product * radial
-        coulomb = jnp.sum(jnp.where(inside, u, 0.0))
+        coulomb = jnp.sum(jnp.where(inside, u, 0.0), axis=-1)
 
     if overflow is not None:
         # An overflowed list misses pairs: make that impossible to overlook downstream.
@@ -323,6 +329,64 @@ def lennard_jones_energy(positions, lennard_jones: LennardJonesParameters, **set
 def coulomb_energy(positions, charges, **settings) -> Float[Array, ""]:
     """Coulomb energy only (open, truncated or reaction field); see :func:`nonbonded_energy_parts`."""
     return nonbonded_energy_parts(positions, charges=charges, **settings)["coulomb"]
+
+
+# ---------------------------------------------------------------------------
+# The interactions of a subset of particles with everything
+
+
+def subset_pairs(subset, n_particles: int, exclusions=None, include_internal: bool = False) -> np.ndarray:
+    """The pairs ``(i, j)``, ``i < j``, with at least one particle in ``subset`` (host side, NumPy).
+
+    Args:
+        subset: (n,) boolean mask or (k,) indices of the subset.
+        n_particles: n.
+        exclusions: (e, 2) pairs to leave out.
+        include_internal: also the pairs with both particles in the subset; ``False`` keeps
+            only subset–rest pairs (the pairs a decoupling switches when ``decouple_internal``).
+
+    Returns:
+        (m, 2) int32 array, m = k(n − k) [+ k(k − 1)/2] minus exclusions: O(k n) rows.
+    """
+    mask = np.zeros(n_particles, dtype=bool)
+    given = np.asarray(subset)
+    if given.dtype == bool:
+        if given.shape != (n_particles,):
+            raise ValueError(f"a subset mask must have shape ({n_particles},); got {given.shape}.")
+        mask = given.copy()
+    else:
+        mask[given.astype(int).reshape(-1)] = True
+    members = np.flatnonzero(mask)
+    partners = np.arange(n_particles) if include_internal else np.flatnonzero(~mask)
+    first = np.repeat(members, partners.size)
+    second = np.tile(partners, members.size)
+    keep = first != second
+    if include_internal:  # an internal pair appears twice, (a, b) and (b, a): keep one
+        keep &= ~(mask[second] & (second < first))
+    low, high = np.minimum(first[keep], second[keep]), np.maximum(first[keep], second[keep])
+    pairs = np.stack([low, high], axis=1).astype(np.int32)
+    if exclusions is not None and np.asarray(exclusions).size:
+        excluded = np.sort(np.asarray(exclusions, np.int64).reshape(-1, 2), axis=1)
+        keys = excluded[:, 0] * n_particles + excluded[:, 1]
+        pairs = pairs[~np.isin(pairs[:, 0].astype(np.int64) * n_particles + pairs[:, 1], keys)]
+    return pairs
+
+
+def subset_energy_parts(positions, subset, *, exclusions=None, decouple_internal: bool = True,
+                        **settings) -> dict[str, Float[Array, "..."]]:
+    """LJ and Coulomb energies of the subset's interactions with every particle, O(k n) pairs.
+
+    The pairs of :func:`subset_pairs` (subset–rest pairs, plus subset-internal pairs when
+    ``decouple_internal=False``, as the coupling switches them) evaluated by
+    :func:`nonbonded_energy_parts` itself, so cutoff, shift, reaction field, minimum image and
+    soft core are exactly those of the full energy. With ``alchemical`` equal to the subset,
+    the difference of this energy between two couplings equals that of the full energy.
+    ``subset`` and ``exclusions`` must be concrete (host) arrays; for repeated calls build the
+    pairs once with :func:`subset_pairs` and pass them as ``pairs``.
+    """
+    n = jnp.shape(positions)[0]
+    pairs = subset_pairs(subset, n, exclusions, include_internal=not decouple_internal)
+    return nonbonded_energy_parts(positions, pairs=pairs, decouple_internal=decouple_internal, **settings)
 
 
 # ---------------------------------------------------------------------------
@@ -470,5 +534,5 @@ __all__ = [
     "lennard_jones_tail_integral", "lennard_jones_tail_pressure",
     "lennard_jones_tail_virial_integral", "lennard_jones_type_parameters", "nonbonded_energy",
     "nonbonded_energy_parts", "reaction_field_constants", "scaled_pair_energy",
-    "scaled_pair_parameters", "soft_core_lennard_jones_pair_energy",
+    "scaled_pair_parameters", "soft_core_lennard_jones_pair_energy", "subset_energy_parts", "subset_pairs",
 ]
