@@ -9,7 +9,13 @@ the burn-in trace), ⟨U⟩/N with its standard error, wall time per evaluation,
 independent sample (wall per step × τ), with its ratio to MALA's. A bare jitted, vmapped
 energy+force loop over the same chains gives the physical limit per evaluation.
 
+``--pair`` instead measures each kernel's *bias* where an exact answer exists: ΔF of decoupling
+one of two Lennard-Jones particles in a periodic box (the system and its quadrature reference of
+``tests/test_insertion_route.py``), by the tool's default route with each kernel over several
+seeds, printing the mean error in units of the reported error and in kT.
+
 Usage: python benchmarks/bench_kernels.py [system.toml] [--budget 200000] [--chains 16]
+       python benchmarks/bench_kernels.py --pair [--seeds 0 1 2 3 4 5]
 """
 from __future__ import annotations
 
@@ -61,14 +67,42 @@ def run_kernel(kernel, target, start, chains, budget, n_particles, kT, damping=N
                 equilibrated=s.equilibrated)
 
 
+def pair_bias(seeds, kernels) -> None:
+    """Mean error of ΔF against the quadrature for each kernel (the ``--pair`` mode)."""
+    import pathlib
+    import sys
+
+    sys.path.insert(0, str(pathlib.Path(__file__).resolve().parent.parent / "tests"))
+    from test_insertion_route import _exact_delta_f, _pair_system
+
+    from fe_tool.systemfile import parse_system
+
+    system, exact = parse_system(_pair_system()), _exact_delta_f()
+    print(f"two LJ particles, decoupling one: exact ΔF = {exact:.5f} kT; budget 40,000 per run")
+    print(f"{'kernel':14s} {'runs':>4s} {'mean error kT':>16s} {'mean z':>7s} {'z per seed'}")
+    for kernel in kernels:
+        errors, zs = [], []
+        for seed in seeds:
+            r = system.estimate(seed=seed, budget=40_000, sampler=kernel, progress=False)
+            errors.append(r.delta_f - exact)
+            zs.append((r.delta_f - exact) / r.stderr)
+        e = np.asarray(errors)
+        print(f"{kernel:14s} {len(e):4d} {e.mean():+8.4f} ± {e.std(ddof=1) / np.sqrt(len(e)):.4f} "
+              f"{np.mean(zs):+7.2f} {' '.join(f'{z:+.1f}' for z in zs)}", flush=True)
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--pair", action="store_true", help="bias of each kernel against an exact ΔF")
+    parser.add_argument("--seeds", nargs="+", type=int, default=[0, 1, 2, 3, 4, 5])
     parser.add_argument("system", nargs="?", default="systems/lj_fluid_decoupling.toml")
     parser.add_argument("--budget", type=int, default=200_000)
     parser.add_argument("--chains", type=int, default=16)
     parser.add_argument("--kernels", default=",".join(KERNELS), help="comma-separated kernels (first is the base)")
     parser.add_argument("--damping", type=float, default=None, help="γh of the kinetic kernels (default: the tool's)")
     args = parser.parse_args(argv)
+    if args.pair:
+        return pair_bias(args.seeds, args.kernels.split(","))
     system = load_system(args.system)
     path, start = system.path, np.asarray(system.start_a)
     n = start.shape[0]

@@ -42,7 +42,7 @@ hard wall written with ``jnp.where``) keeps a finite, exact work, and one that e
 the final level forbids gets w = +∞ (weight zero), never ∞ − ∞. The per-transition increments
 (protocol + shadow) are reported as they are and are NaN across such a region.
 
-**Forbidden and undefined regions** (the rules, also in :func:`_second_half`):
+**Forbidden and undefined regions** (the rules, also in :func:`_arrive`):
 
 * a kick force that is not finite where u = +∞ cannot be integrated: the trajectory stops
   (frozen where it was) with w = +∞, weight zero. This is exact only if the reverse process
@@ -51,12 +51,23 @@ the final level forbids gets w = +∞ (weight zero), never ∞ − ∞. The per-
   energy function: w = NaN (the routes count the trajectory as diverged), also frozen.
 * a start whose energy is not finite is not an equilibrium sample: w = NaN.
 
-**Cost.** Every visited point (the start and the end of each step) is evaluated at two
-levels in one call: the level of the step that ended there (energy for the shadow work, force
-for the closing kick) and the next one (energy for the protocol work, force for the next
-opening kick): :func:`kinetic_switching_evaluations` = T (K + 1) ×
-``path.evaluations_per_point(2)`` — the same as overdamped switching for a linear path, twice
-that for paths that evaluate each level separately.
+**One force per point.** Between two steps the closing half-kick of the first and the opening
+half-kick of the second act at the same point; they are merged into one kick at the level in
+force there (forward: the level just switched to; reverse: the level about to be left), so
+every visited point needs the force at one level only. The merged scheme is still a sequence
+of level changes, shears and O steps whose time reversal is the reverse process (the reverse
+kicks at the mirrored levels), so the identity above holds unchanged; with λ fixed it is
+BAOAB exactly. The work needs no intermediate energies (they telescope): w = u_{l_K}(x_K) −
+u_{l_0}(x_0) + Σ kicks, where the end energies come from the kick-level energies and the level
+change made at the first (forward) or last (reverse) point.
+
+**Cost.** Each point costs one energy and force at its kick level plus the level change made
+there, u_to(x) − u_from(x): from :meth:`Path.energy_change` where that costs less than an
+energy (a decoupling path sums only the changing particles' pairs: ≈ 4/n of an evaluation for
+one particle in n), else one more energy (counted as a full evaluation):
+:func:`kinetic_switching_evaluations`. The level changes are the protocol work of each
+transition; the rest of an increment (kicks and energy changes at fixed level) is its shadow
+work.
 
 Carried neighbour lists (particle models) are brought up to date once per step for the whole
 batch, between the A-A move and the force evaluation, outside the per-trajectory map.
@@ -64,6 +75,7 @@ batch, between the A-A move and the force evaluation, outside the per-trajectory
 from __future__ import annotations
 
 import dataclasses
+import math
 from typing import Any, Callable, NamedTuple
 
 import equinox as eqx
@@ -102,81 +114,108 @@ def direction_sign(direction, dtype=jnp.float64):
 
 
 def _run_levels(lams, sign):
-    """The start level and the level of every step in the run's time order, then the final level.
+    """Levels l_0 … l_K in the run's time order (forward λ_0 … λ_K, reverse λ_K … λ_0)."""
+    return jnp.where(sign > 0, lams, lams[::-1])
 
-    ``levels[j]`` is the level of step j (j < K) and ``levels[K]`` the final one: forward
-    (λ_1 … λ_K, λ_K), reverse (λ_K … λ_0); the start level is λ_0 forward, λ_K reverse.
+
+def _point_levels(levels, sign):
+    """For every point i = 0 … K: the kick level and the level change made there (from, to).
+
+    Forward, the level changes l_i → l_{i+1} at point i before its kick (none at the last
+    point); reverse, the mirror image, l_{i−1} → l_i at point i after its kick (none at the
+    first). The kick level is the one in force at the kick: forward l_{i+1} (l_K at the end),
+    reverse l_{i−1} (l_0 at the start).
     """
-    forward = jnp.concatenate([lams[1:], lams[-1:]])
-    levels = jnp.where(sign > 0, forward, lams[::-1])
-    return jnp.where(sign > 0, lams[0], lams[-1]), levels
+    after = jnp.concatenate([levels[1:], levels[-1:]])
+    before = jnp.concatenate([levels[:1], levels[:-1]])
+    kick = jnp.where(sign > 0, after, before)
+    change_from = jnp.where(sign > 0, levels, before)
+    change_to = jnp.where(sign > 0, after, levels)
+    return kick, change_from, change_to
 
 
-def _evaluate(path: Path, force: ForceFunction | None, x, levels, neighbours):
-    """Energies and kick forces −∇u + f at two levels on one point (``path.evaluations_per_point(2)``)."""
+def _evaluate(path: Path, force: ForceFunction | None, x, kick_level, change_from, change_to, cheap_change: bool,
+              neighbours):
+    """At one point: u and the kick force −∇u + f at the kick level, the level change made there,
+    and u at the other level of that change (u itself where there is none).
 
-    def one(lam):
-        # a user's path may define energy(x, lam) only: a list is passed only when there is one
-        u, g = path.energy_and_grad(x, lam) if neighbours is None else path.energy_and_grad(x, lam, neighbours)
-        return u, -g if force is None else -g + force(x, lam)
-
-    return jax.vmap(one)(levels)
-
-
-def _first_half(key, s: KineticState, h, decay, inverse_mass):
-    """B A O A of one trajectory: position, momentum before the closing kick, heat, kick energy,
-    and whether the opening force was undefined (then nothing moves)."""
-    bad_open = ~jnp.all(jnp.isfinite(s.force))
-    p1 = s.momentum + 0.5 * h * s.force
-    x1 = s.position + 0.5 * h * inverse_mass * p1
-    k1 = kinetic_energy(p1, inverse_mass)
-    p2 = refresh(key, p1, inverse_mass, decay)
-    heat = kinetic_energy(p2, inverse_mass) - k1
-    x2 = x1 + 0.5 * h * inverse_mass * p2
-    moving = ~(s.forbidden | s.undefined | bad_open)
-    x2 = jnp.where(moving, x2, s.position)  # a stopped trajectory stays finite where it was
-    return x2, p2, heat, k1 - kinetic_energy(s.momentum, inverse_mass), bad_open
+    One energy-and-gradient call, plus the change u_to(x) − u_from(x): from
+    :meth:`Path.energy_change` when that is cheaper than an energy (a decoupling path touches
+    only the changing particles' pairs), else from one more energy at the level that is not the
+    kick level (then an infinite energy at one level cannot turn the other into ∞ − ∞).
+    """
+    extra = () if neighbours is None else (neighbours,)
+    u, g = path.energy_and_grad(x, kick_level, *extra)
+    kick = -g if force is None else -g + force(x, kick_level)
+    kick_is_to = kick_level == change_to
+    if cheap_change:
+        change = path.energy_change(x, change_from, change_to)
+        other = jnp.where(kick_is_to, u - change, u + change)
+    else:
+        other = path.energy(x, jnp.where(kick_is_to, change_from, change_to), *extra)
+        change = jnp.where(kick_is_to, u - other, other - u)
+    none = change_from == change_to
+    return u, kick, jnp.where(none, 0.0, change), jnp.where(none, u, other)
 
 
-def _second_half(path, force, s: KineticState, x, p, heat, kick, bad_open, levels, h, inverse_mass, neighbours):
-    """Forces at the new point, the closing kick, the stop rules; returns (state, shadow, protocol)."""
-    (u_close, u_next), (f_close, f_next) = _evaluate(path, force, x, levels, neighbours)
-    p3 = p + 0.5 * h * f_close
-    k3 = kinetic_energy(p3, inverse_mass)
-    shadow = u_close + k3 - (s.energy + kinetic_energy(s.momentum, inverse_mass)) - heat
+def _kick(s: KineticState, size, inverse_mass):
+    """p ← p + size·F at the state's point; returns the state and the kick's kinetic-energy change."""
+    p = s.momentum + size * s.force
+    change = kinetic_energy(p, inverse_mass) - kinetic_energy(s.momentum, inverse_mass)
+    return s._replace(momentum=p), change
+
+
+def _drift_refresh(key, s: KineticState, h, decay, inverse_mass):
+    """A O A: the new position and momentum (a stopped trajectory stays where it was)."""
+    x = s.position + 0.5 * h * inverse_mass * s.momentum
+    p = refresh(key, s.momentum, inverse_mass, decay)
+    x = x + 0.5 * h * inverse_mass * p
     alive = ~(s.forbidden | s.undefined)
-    bad_close = ~jnp.all(jnp.isfinite(f_close))
+    return jnp.where(alive, x, s.position), jnp.where(alive, p, s.momentum)
+
+
+def _arrive(path, force, s: KineticState, x, p, levels, cheap_change, neighbours):
+    """Evaluate the new point and apply the stop rules (module doc).
+
+    Returns (state, level change, u at the change's other level, what the stop adds to the
+    work: +∞ or NaN at the step that stops, else 0)."""
+    u, f, change, other = _evaluate(path, force, x, *levels, cheap_change, neighbours)
+    alive = ~(s.forbidden | s.undefined)
+    bad_force = ~jnp.all(jnp.isfinite(f))
     # Rules: an undefined kick force where u = +inf cannot be integrated (stop, w = +inf); a NaN
     # energy or an undefined force where u is finite is an error (stop, w = NaN). A finite force
     # through a forbidden region is integrated as it is: the work stays exact (module doc).
-    stop_forbidden = alive & jnp.where(bad_open, s.energy == jnp.inf, bad_close & (u_close == jnp.inf))
-    stop_undefined = alive & jnp.where(
-        bad_open, s.energy != jnp.inf,
-        (bad_close & (u_close != jnp.inf)) | jnp.isnan(u_close) | jnp.isnan(u_next))
+    stop_forbidden = alive & bad_force & (u == jnp.inf)
+    stop_undefined = alive & ((bad_force & (u != jnp.inf)) | jnp.isnan(u))
     moved = alive & ~stop_forbidden & ~stop_undefined
     keep = lambda new, old: jnp.where(moved, new, old)  # noqa: E731
-    new = KineticState(keep(x, s.position), keep(p3, s.momentum), keep(u_next, s.energy), keep(f_next, s.force),
-                       s.kicks + jnp.where(moved, kick + k3 - kinetic_energy(p, inverse_mass), 0.0),
+    new = KineticState(keep(x, s.position), keep(p, s.momentum), keep(u, s.energy), keep(f, s.force), s.kicks,
                        s.forbidden | stop_forbidden, s.undefined | stop_undefined)
-    stopped_value = jnp.where(stop_undefined, jnp.nan, jnp.where(stop_forbidden, jnp.inf, 0.0))
-    return new, jnp.where(moved, shadow, stopped_value), jnp.where(moved, u_next - u_close, 0.0)
+    stop = jnp.where(stop_undefined, jnp.nan, jnp.where(stop_forbidden, jnp.inf, 0.0))
+    return new, jnp.where(moved, change, 0.0), jnp.where(moved, other, s.energy), stop
 
 
-def _start(path, force, key, starts, start_level, first_level, inverse_mass, builder):
-    """States at the starts (two levels evaluated: the start's and the first step's) and lists."""
+def _start(path, force, key, starts, levels, inverse_mass, cheap_change, builder):
+    """States at the starts (kick level of point 0) and lists; the level change made at point 0."""
     lists = None if builder is None else builder.build_batch(starts)
-    levels = jnp.stack([start_level, first_level])
-    u, f = jax.vmap(lambda x, nb: _evaluate(path, force, x, levels, nb),
-                    in_axes=(0, 0 if lists is not None else None))(starts, lists)
-    undefined = ~jnp.isfinite(u[:, 0]) | jnp.isnan(u[:, 1])
+    u, f, change, other = jax.vmap(lambda x, nb: _evaluate(path, force, x, *levels, cheap_change, nb),
+                                   in_axes=(0, 0 if lists is not None else None))(starts, lists)
+    bad_force = ~jnp.all(jnp.isfinite(f.reshape(f.shape[0], -1)), axis=1)
+    forbidden = bad_force & (u == jnp.inf)
+    undefined = jnp.isnan(u) | jnp.isnan(other) | (bad_force & (u != jnp.inf))
     momenta = draw_momenta(key, starts, inverse_mass)
-    zeros = jnp.zeros_like(u[:, 0])
-    states = KineticState(starts, momenta, u[:, 1], f[:, 1], zeros, jnp.zeros_like(undefined), undefined)
-    return states, lists, u[:, 0], u[:, 1] - u[:, 0]
+    states = KineticState(starts, momenta, u, f, jnp.zeros_like(u), forbidden, undefined)
+    return states, lists, change, other
 
 
-def _switch(path, force, key, starts, lams, step_size, inverse_mass, damping, direction, builder):
-    """:func:`switch_kinetic`'s body; also returns the final lists (or ``None``)."""
+def _switch(path, force, key, starts, lams, step_size, inverse_mass, damping, direction, builder, cheap_change):
+    """:func:`switch_kinetic`'s body; also returns the final lists (or ``None``).
+
+    The run's steps are B A O A B with the closing half-kick of one step and the opening
+    half-kick of the next merged into one kick at the point between them (module doc), so every
+    point costs one force: the first and last points get half kicks, the others
+    (h_j + h_{j+1})/2.
+    """
     sign = direction_sign(direction, starts.dtype)
     lams = jnp.asarray(lams, starts.dtype)
     steps = lams.shape[0] - 1
@@ -184,33 +223,49 @@ def _switch(path, force, key, starts, lams, step_size, inverse_mass, damping, di
     per_step = lambda a: jnp.broadcast_to(jnp.asarray(a, starts.dtype), (steps,))  # noqa: E731
     sizes, decays = per_step(step_size), jnp.exp(-per_step(damping))
     sizes, decays = jnp.where(sign > 0, sizes, sizes[::-1]), jnp.where(sign > 0, decays, decays[::-1])
-    start_level, levels = _run_levels(lams, sign)
+    kick_levels, change_from, change_to = _point_levels(_run_levels(lams, sign), sign)
     key_momenta, key_steps = jax.random.split(key)
-    states, lists, u_start, protocol_start = _start(path, force, key_momenta, starts, start_level, levels[0],
-                                                    inverse_mass, builder)
+    states, lists, change0, other0 = _start(path, force, key_momenta, starts, (kick_levels[0], change_from[0], change_to[0]),
+                                    inverse_mass, cheap_change, builder)
+    u_kick0, start_forbidden, start_undefined = states.energy, states.forbidden, states.undefined
+    states, kick0 = jax.vmap(lambda s: _kick(s, 0.5 * sizes[0], inverse_mass))(states)
     trajectories = starts.shape[0]
+    next_kick = 0.5 * (sizes + jnp.concatenate([sizes[1:], jnp.zeros((1,), sizes.dtype)]))
 
     def body(carry, inputs):
         states, lists = carry
-        key_j, h, decay, pair = inputs
+        key_j, h, decay, kick_size, levels = inputs
         keys = jax.random.split(key_j, trajectories)
-        x, p, heat, kick, bad_open = jax.vmap(lambda k, s: _first_half(k, s, h, decay, inverse_mass))(keys, states)
+        x, p = jax.vmap(lambda k, s: _drift_refresh(k, s, h, decay, inverse_mass))(keys, states)
         lists = None if builder is None else builder.update_batch(x, lists)
-        states, shadow, protocol = jax.vmap(
-            lambda s, xi, pi, qi, ki, bi, nb: _second_half(path, force, s, xi, pi, qi, ki, bi, pair, h,
-                                                           inverse_mass, nb),
-            in_axes=(0, 0, 0, 0, 0, 0, 0 if lists is not None else None))(states, x, p, heat, kick, bad_open, lists)
-        return (states, lists), (shadow, protocol)
+        before, was_alive = states.energy, ~(states.forbidden | states.undefined)
+        states, change, other, stop = jax.vmap(
+            lambda s, xi, pi, nb: _arrive(path, force, s, xi, pi, levels, cheap_change, nb),
+            in_axes=(0, 0, 0, 0 if lists is not None else None))(states, x, p, lists)
+        alive = ~(states.forbidden | states.undefined)
+        states, kicked = jax.vmap(lambda s: _kick(s, kick_size, inverse_mass))(states)
+        kicked = jnp.where(alive, kicked, 0.0)
+        states = states._replace(kicks=states.kicks + kicked)
+        move = jnp.where(was_alive & alive, states.energy - before + kicked, 0.0) + stop
+        return (states, lists), (move, change, other)
 
-    pairs = jnp.stack([levels[:-1], levels[1:]], axis=1)
-    inputs = (jax.random.split(key_steps, steps), sizes, decays, pairs)
-    (states, lists), (shadow, protocol) = jax.lax.scan(body, (states, lists), inputs)
-    shadow, protocol = shadow.T, protocol.T  # (T, K)
-    protocols = jnp.concatenate([protocol_start[:, None], protocol], axis=1)  # at points 0 … K
-    # forward: the level change at point j opens transition j; reverse: the one at point j+1 closes it
-    increments = shadow + jnp.where(sign > 0, protocols[:, :-1], protocols[:, 1:])
-    works = states.energy - u_start + states.kicks
+    point_levels = (kick_levels[1:], change_from[1:], change_to[1:])
+    inputs = (jax.random.split(key_steps, steps), sizes, decays, next_kick, point_levels)
+    (states, lists), (moves, changes, others) = jax.lax.scan(body, (states, lists), inputs)
+    moves, changes = moves.T, changes.T  # (T, K): energy change at the kick levels + kick; change at points 1 … K
+    # forward: the change at point j opens transition j; reverse: the one at point j+1 closes it
+    protocol = jnp.where(sign > 0, jnp.concatenate([change0[:, None], changes[:, :-1]], axis=1), changes)
+    # w = u_{l_K}(x_K) − u_{l_0}(x_0) + Σ kicks: forward, u_{l_K}(x_K) is the last kick-level energy and
+    # u_{l_0}(x_0) the other level's at the start; reverse, the other way round
+    first = jnp.where(sign > 0, other0, u_kick0)
+    last = jnp.where(sign > 0, states.energy, others[-1])
+    works = last - first + kick0 + states.kicks
+    stopped0 = jnp.where(start_undefined, jnp.nan, jnp.where(start_forbidden, jnp.inf, 0.0))
+    increments = moves.at[:, 0].add(jnp.where(start_undefined | start_forbidden, stopped0,
+                                              kick0 + jnp.where(sign > 0, change0, 0.0)))
+    increments = increments.at[:, -1].add(jnp.where(sign > 0, 0.0, changes[:, -1]))
     works = jnp.where(states.undefined, jnp.nan, jnp.where(states.forbidden, jnp.inf, works))
+    shadow = increments - protocol
     return works, increments, states.position, shadow, lists
 
 
@@ -245,22 +300,34 @@ def switch_kinetic(path: Path, force: ForceFunction | None, key, starts: Array, 
     if jnp.ndim(lams) != 1 or jnp.shape(lams)[0] < 2:
         raise ValueError(f"lams must be a vector of at least 2 levels, got shape {jnp.shape(lams)}")
     works, increments, finals, shadow, lists = _switch(path, force, key, starts, lams, step_size, inverse_mass,
-                                                       damping, direction, builder)
+                                                       damping, direction, builder, cheap_level_change(path))
     overflow = jnp.asarray(False) if lists is None else jnp.any(lists.overflow)
     if record_shadow:
         return works, increments, finals, overflow, shadow
     return works, increments, finals, overflow
 
 
+def cheap_level_change(path: Path) -> bool:
+    """Whether :meth:`Path.energy_change` costs less than one energy (then it gives the level changes)."""
+    return float(path.energy_change_cost()) < 1.0
+
+
+def kinetic_point_cost(path: Path) -> float:
+    """Evaluations per visited point: one energy and force, plus the level change (module doc, "Cost")."""
+    change = float(path.energy_change_cost()) if cheap_level_change(path) else 1.0
+    return float(path.evaluations_per_point(1)) + change
+
+
 def kinetic_switching_evaluations(path: Path, trajectories: int, steps: int) -> int:
-    """Energy evaluations of ``trajectories`` kinetic trajectories of ``steps`` transitions: every
-    visited point (start and K step ends) is evaluated at two levels (module doc, "Cost")."""
-    return int(trajectories) * (int(steps) + 1) * path.evaluations_per_point(2)
+    """Energy evaluations of ``trajectories`` kinetic trajectories of ``steps`` transitions
+    (``steps`` + 1 points each at :func:`kinetic_point_cost`, the total rounded up)."""
+    return int(math.ceil(int(trajectories) * (int(steps) + 1) * kinetic_point_cost(path) - 1e-9))
 
 
 @eqx.filter_jit
 def _switch_jit(path, force, key, starts, lams, step_size, inverse_mass, damping, sign, builder):
-    return _switch(path, force, key, starts, lams, step_size, inverse_mass, damping, sign, builder)
+    return _switch(path, force, key, starts, lams, step_size, inverse_mass, damping, sign, builder,
+                   cheap_level_change(path))
 
 
 @dataclasses.dataclass

@@ -177,9 +177,16 @@ class Result:
                              f"spread {np.std(finite):.3f} kT, diverged {int(np.sum(np.isnan(w) | (w == -np.inf)))}, "
                              f"+inf (zero weight) {int(np.sum(w == np.inf))}")
         sw = self.settings
-        if "switching_steps" in sw:
+        if sw.get("switching_steps") == 0:
+            lines.append(f"  switching: none — {self.diagnostics.get('plan', {}).get('reason', 'zero steps')}")
+        elif "switching_steps" in sw:
+            dynamics = self.diagnostics.get("switching_dynamics")
             lines.append(f"  switching: {sw.get('switching_steps')} steps, schedule {sw.get('schedule')}, "
-                         f"control {self._control_words()}")
+                         f"control {self._control_words()}" + (f", {dynamics}" if dynamics else ""))
+        check = self.diagnostics.get("insertion")
+        if check and not check.get("used", True):
+            lines.append(f"  insertion at the decoupled end: checked ({check['redraws']} placements per sample), "
+                         f"not used: {check['reason']}")
         for end in ("a", "b"):
             d = self.diagnostics.get(f"sampling_{end}")
             if d:

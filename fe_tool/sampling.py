@@ -350,7 +350,7 @@ class _Chains:
         self.grown += 1
 
 
-def _start(key, target, start, starts, chains, kernel, builder):
+def _start(key, target, start, starts, chains, kernel, builder, jitter: float = 1e-3):
     """Chain start positions (start set round-robin, tiny jitter) and the first states."""
     key_jitter, key_run = jax.random.split(key)
     if starts is None:
@@ -361,7 +361,7 @@ def _start(key, target, start, starts, chains, kernel, builder):
             raise ValueError(f"starts must stack configurations of shape {start.shape} on a first axis, "
                              f"got shape {starts.shape}")
         origins = starts[jnp.arange(chains) % starts.shape[0]]  # round-robin over the chains
-    positions = origins + 1e-3 * jax.random.normal(key_jitter, (chains,) + start.shape, start.dtype)
+    positions = origins + jitter * jax.random.normal(key_jitter, (chains,) + start.shape, start.dtype)
     states = init_chains(target, positions, kernel=kernel, key=jax.random.fold_in(key_jitter, 1), builder=builder)
     return states, iter(jax.random.split(key_run, 10_000))
 
@@ -573,3 +573,32 @@ def _finish(ch: _Chains, flat, stride, acceptance, burn: _BurnIn, stuck, warmup_
         forbidden_proposals=int(ch.nonfinite[1]), kernel=ch.kernel,
         shadow_work_per_step=float(np.mean(ch.shadow[-max(1, len(ch.shadow) // 2):])) if ch.shadow else 0.0,
         neighbour_list_grown=ch.grown)
+
+
+def continue_sampling(key, target: Target, previous: StateSamples, positions, *, samples: int, evaluation_budget: int,
+                      name: str = "end state", on_spent=None, damping: float = DEFAULT_DAMPING,
+                      builder=None) -> StateSamples:
+    """More samples from chains that are already in equilibrium: no warm-up, no burn-in.
+
+    ``positions`` (one configuration per chain, e.g. each chain's last sample) continue with
+    ``previous``'s kernel, step size, preconditioner and thinning stride (its autocorrelation
+    time); momenta are drawn afresh, which leaves the equilibrium distribution unchanged. The
+    returned samples are interleaved over the chains like :func:`sample_state`'s; the diagnostics
+    are ``previous``'s, with this call's evaluations.
+    """
+    positions = jnp.asarray(positions)
+    builder = builder if builder is not None else target.path.dynamics_neighbour_builder()
+    chains = positions.shape[0]
+    states, keys = _start(key, target, positions[0], positions, chains, previous.kernel, builder, jitter=0.0)
+    dtype = positions.dtype
+    ch = _Chains(target, previous.kernel, states, jnp.log(jnp.asarray(previous.step_size, dtype)),
+                 jnp.asarray(previous.preconditioner, dtype), keys, chains, target.evaluations(),
+                 target.derivative_evaluations(), int(evaluation_budget), float(damping), builder, on_spent,
+                 spent=chains * target.evaluations())
+    warnings: list[str] = []
+    healthy = np.arange(chains)
+    flat, _, acceptance = _production(ch, samples, healthy, np.ones(chains), previous.autocorrelation_time, name,
+                                      warnings, positions.shape[1:])
+    return dataclasses.replace(previous, samples=flat, evaluations=int(ch.spent), acceptance=acceptance,
+                               warnings=warnings, chains=chains, stuck_chains=0,
+                               effective_sample_size=float(len(flat)), neighbour_list_grown=ch.grown)

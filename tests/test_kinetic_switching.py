@@ -135,17 +135,21 @@ def _exact_mean_work(k, distance, inverse_mass, h, damping, levels):
     def affine(m, s, matrix, shift, noise=0.0):
         return matrix @ m + shift, matrix @ s @ matrix.T + np.diag([0.0, noise])
 
-    kick = lambda c: (np.array([[1.0, 0.0], [-0.5 * h * k, 1.0]]), np.array([0.0, 0.5 * h * k * c]))  # noqa: E731
+    kick = lambda c, size: (np.array([[1.0, 0.0], [-size * k, 1.0]]), np.array([0.0, size * k * c]))  # noqa: E731
     drift = (np.array([[1.0, 0.5 * h * inverse_mass], [0.0, 1.0]]), np.zeros(2))
-    for lam in levels[1:]:
-        c = lam * distance
-        mean, cov = affine(mean, cov, *kick(c))
+    # the module's forward scheme: at point i the level moves on to l_{i+1} (l_K at the end) and the
+    # kick there acts at that level, half a step at the first and last points, a whole one between
+    count = len(levels) - 1
+    kick_level = [levels[min(i + 1, count)] for i in range(count + 1)]
+    sizes = [0.5 * h] + [h] * (count - 1) + [0.5 * h]
+    mean, cov = affine(mean, cov, *kick(kick_level[0] * distance, sizes[0]))
+    for i in range(1, count + 1):
         mean, cov = affine(mean, cov, *drift)
         before = kinetic(mean, cov)
         mean, cov = affine(mean, cov, np.diag([1.0, a]), np.zeros(2), (1.0 - a * a) / inverse_mass)
         heat += kinetic(mean, cov) - before
         mean, cov = affine(mean, cov, *drift)
-        mean, cov = affine(mean, cov, *kick(c))
+        mean, cov = affine(mean, cov, *kick(kick_level[i] * distance, sizes[i]))
     return potential(mean, cov, levels[-1] * distance) + kinetic(mean, cov) - h_start - heat
 
 

@@ -11,10 +11,10 @@ Finite size: the test runs N = 108 particles (NVT, ρ* = 0.3, T* = 2), where μ_
 the thermodynamic limit by O(1/N). We have no source for the size of that term at this state
 point, so no allowance is added: the check is |βμ_ex − βμ_KN| ≤ max(0.1, 4σ) as the issue
 specifies (0.1 kT), with σ the reported error, which must itself be below 0.1 kT so that the
-check has some power. Measured with budget 8e5 and 16 chains on 2 shared cores (neighbour list,
-chain-grouped error): seed 2 (this test) βμ_ex = −0.452 ± 0.092 in 221 s; seeds 0 and 1 −0.568 ± 0.090
-and −0.619 ± 0.108; Kolafa–Nezbeda −0.48710. Halving σ needs about four times the budget; the
-256-particle benchmark gave −0.493 ± 0.085 at 2e6.
+check has some power. The file's own settings (1.5e5 evaluations, 16 chains) now reach the
+route's zero-step limit (test-particle insertion with placements at the decoupled end, BAR with
+deletion); the issue's target is σ ≤ 0.02 kT there, which the test also asserts. Measured on
+2 shared cores: see ``benchmarks/bench_lj_decoupling.py`` and the README's LJ table.
 """
 import math
 import pathlib
@@ -118,16 +118,18 @@ def test_decoupling_gives_the_kolafa_nezbeda_excess_chemical_potential():
     temperature = system.kT
     density = system.particles["count"] / float(np.prod(system.particles["box"]))
     assert (temperature, system.particles["cutoff"]) == (2.0, 2.5) and density == pytest.approx(0.3, rel=1e-12)
-    assert system.settings == {"chains": 16, "budget": 3_200_000}  # the test runs a quarter of that
+    assert system.settings == {"chains": 16, "budget": 150_000}  # the test runs the file's own settings
     # the file's reference is ΔF = −μ_ex from the Kolafa–Nezbeda EOS
     reference_kn = beta_excess_chemical_potential(kn_residual_free_energy, temperature, density)
     assert system.reference["delta_f"] == pytest.approx(-reference_kn * temperature, abs=1e-4)
-    result = system.estimate(seed=2, budget=800_000, progress=False)
+    result = system.estimate(seed=2, progress=False)
     beta_mu = -result.delta_f / system.kT  # μ_ex = −ΔF (A coupled, B decoupled)
     error = result.stderr / system.kT
     reference = beta_excess_chemical_potential(kn_residual_free_energy, temperature, density)
     second = beta_excess_chemical_potential(jzg_residual_free_energy, temperature, density)
     print(f"βμ_ex = {beta_mu:.4f} ± {error:.4f}; Kolafa–Nezbeda {reference:.5f}; JZG {second:.5f}; "
           f"{result.energy_evaluations:,} evaluations, {result.timings['total']:.0f} s")
-    assert error < 0.15   # the tool's stated accuracy promise (fe_tool.validation): stderr ≤ 0.15 kT
+    assert not result.flagged, result.summary()
+    assert result.settings["switching_steps"] == 0   # insertion is the cheapest route at this dilute state
+    assert error <= 0.02   # the measured target of the file's settings (issue: ±0.02 kT)
     assert abs(beta_mu - reference) <= max(0.1, 4 * error)

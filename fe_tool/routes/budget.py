@@ -19,6 +19,7 @@ it, so the whole run never spends more than the budget.
 from __future__ import annotations
 
 import dataclasses
+import math
 
 from ..switching import padded_trajectories
 
@@ -64,9 +65,10 @@ class SwitchingBudget:
         return 2 * self.pilot_trajectories * (PILOT_STEPS + 1) * per_point
 
 
-def switching_cost(trajectories: int, steps: int, per_point: int) -> int:
-    """Evaluations of ``trajectories`` trajectories of ``steps`` steps in one direction."""
-    return int(trajectories) * (int(steps) + 1) * int(per_point)
+def switching_cost(trajectories: int, steps: int, per_point: float) -> int:
+    """Evaluations of ``trajectories`` trajectories of ``steps`` steps in one direction (``per_point``
+    may be fractional: a kinetic step adds a cheap energy at a second λ; the total is rounded up)."""
+    return int(math.ceil(int(trajectories) * (int(steps) + 1) * float(per_point) - 1e-9))
 
 
 def _pilot_runs(step_pilot: bool, schedule_pilot: bool, scales: tuple[float, ...]) -> int:

@@ -14,6 +14,7 @@ class Ledger:
     timings: dict[str, float] = dataclasses.field(default_factory=dict)
     flagged: bool = False
     meter: Any = None   # a fe_tool.progress.EvaluationMeter, or None
+    notes: dict[str, Any] = dataclasses.field(default_factory=dict)  # stage findings for the diagnostics
 
     def spend(self, evaluations: int) -> None:
         """Move the progress meter (the cost itself is booked per stage in ``cost``)."""

@@ -25,15 +25,20 @@ from ..progress import EvaluationMeter, progress_enabled
 from ..results import Result
 from ..sampling import StateSamples, end_target, nonfinite_warnings, sample_state
 from ..switching import run_in_batches, switching_evaluations_padded
+from . import insertion
+from .dynamics import KineticSwitching, OverdampedSwitching, choose_dynamics
 from .budget import MIN_TRAJECTORIES, PILOT_STEPS, SwitchingBudget, affordable_trajectories, plan_switching_budget
 from .ledger import Ledger
-from .planning import PilotPoint, length_profile, plan_protocol, schedule_from_profile
+from .planning import PilotPoint, Plan, length_profile, plan_protocol, schedule_from_profile
 
 DEFAULT_BUDGET = 1_000_000
 SWITCH_BATCH = 128
 PAIR_AUTO_NOTE = ("not trained: for particle systems control=\"auto\" leaves the pair-force control off (on the "
                   "Lennard-Jones decoupling benchmark it cut the insertion work spread at equal steps, but its training "
                   "never paid for itself at equal budget); control=\"learned\" trains it")
+
+KINETIC_AUTO_NOTE = ("not trained: switching runs kinetic Langevin dynamics (as the end states were sampled), for "
+                     "which no control is trained; control=\"learned\" trains a drift for overdamped switching")
 
 
 def mark_diverged(works: np.ndarray) -> np.ndarray:
@@ -74,26 +79,39 @@ def run_estimators(work_forward: np.ndarray, work_reverse: np.ndarray, seed: int
 
 
 def with_reach(estimate, own: np.ndarray, other: np.ndarray, direction: str):
-    """Mark a one-sided average unreliable when none of its works reaches where its weight lies.
+    """Mark a one-sided average unreliable when its works have not reached where its weight lies.
 
-    By Crooks' relation the works that dominate the forward exponential average are those near
-    the negated works of typical reverse trajectories, and vice versa (Jarzynski 2006, Phys.
-    Rev. E 73, 046105 — from memory). If not one of this direction's works lies at or below the
-    median of the other direction's negated works, the average has not reached its dominant
-    region: its value is typically too high in its own direction and its own error bar cannot
-    know it (the sample looks well behaved). The other direction's works are independent data,
-    so this check does not share the blind spot of the tail-shape check.
+    By Crooks' relation, p_F(w) e^{−w} = e^{−Δf} p_R(−w): the share of the forward exponential
+    average contributed by works below some value m equals the share of reverse works above −m
+    (Crooks 1998, J. Stat. Phys. 90, 1481; the argument of Jarzynski 2006, Phys. Rev. E 73,
+    046105). So with m the smallest forward work seen, the share q of (finite) reverse works above
+    −m is weight the forward average has never sampled: it is too high in its own direction by
+    about −ln(1 − q), and its own error bar cannot know it (the sample looks well behaved; e.g.
+    deleting a particle from a fluid, whose overlap configurations the coupled end almost never
+    visits). The other direction's works are independent data, so this check does not share the
+    blind spot of the tail-shape check. The average is marked unreliable when none of its works
+    reaches the other's median (the old rule, q ≥ ½) or when the missed share's bias exceeds twice
+    its error bar. Symmetrically for the reverse average.
     """
     import dataclasses
 
+    finite_other = other[np.isfinite(other)]
     target = float(np.median(-other))
     reach = int(np.sum(own <= target))
-    details = {**estimate.details, "works_reaching_other_side": reach}
-    if reach == 0 and estimate.details.get("reliable", True):
-        other_name = "reverse" if direction == "forward" else "forward"
-        details.update(reliable=False, stderr_if_converged=estimate.stderr, unreliable_reason=(
-            f"none of its {own.size} works reaches the typical negated {other_name} work ({target:.3g} kT), where "
-            "this exponential average gets its weight, so it has not converged"))
+    missed = float(np.mean(-finite_other < np.min(own))) if own.size and finite_other.size else 0.0
+    bias = -math.log1p(-missed) if missed < 1.0 else math.inf
+    details = {**estimate.details, "works_reaching_other_side": reach, "missed_weight_share": missed}
+    other_name = "reverse" if direction == "forward" else "forward"
+    reason = None
+    if reach == 0:
+        reason = (f"none of its {own.size} works reaches the typical negated {other_name} work ({target:.3g} kT), "
+                  "where this exponential average gets its weight, so it has not converged")
+    elif bias > 2.0 * estimate.stderr:
+        reason = (f"{missed:.1%} of the {other_name} works lie where none of its works reached; by Crooks' relation "
+                  f"that is weight this average never sampled (it is too high by about {bias:.2g} kT in its own "
+                  "direction)")
+    if reason is not None and estimate.details.get("reliable", True):
+        details.update(reliable=False, stderr_if_converged=estimate.stderr, unreliable_reason=reason)
         return dataclasses.replace(estimate, stderr=math.inf, details=details)
     return dataclasses.replace(estimate, details=details)
 
@@ -134,36 +152,31 @@ def choose_headline(estimates: dict, overlap: float, work_forward: np.ndarray,
 # ------------------------------------------------------------------ pilot switching
 
 def _switching_step_sizes(lams: np.ndarray, samples_a: StateSamples, samples_b: StateSamples, scale: float) -> np.ndarray:
-    mid = 0.5 * (lams[:-1] + lams[1:])
-    log_eps = (1 - mid) * math.log(samples_a.overdamped_step) + mid * math.log(samples_b.overdamped_step)
-    return scale * np.exp(log_eps)
+    """Overdamped switching steps (kept for the benchmarks; the route asks its dynamics)."""
+    return OverdampedSwitching(samples_a, samples_b, ()).step_sizes(lams, scale)
 
 
-def _pilot_both_ways(path, key, samples_a, samples_b, precision_a, precision_b, lams, scale, n, cost, on_spent):
+def _pilot_both_ways(path, dyn, key, lams, scale, n, cost, on_spent):
     """``n`` uncontrolled trajectories each way on ``lams`` at one step scale, booked to ``cost["pilot"]``.
 
     Returns ``(next key, (forward works, increments), (reverse works, increments))``.
     """
-    eps = _switching_step_sizes(lams, samples_a, samples_b, scale)
+    eps = dyn.step_sizes(lams, scale)
     kf, kr, key = jax.random.split(key, 3)
-    forward = run_in_batches(path, None, kf, samples_a.samples[:n], lams, eps, precision_a, precision_b,
-                             "forward", n, on_spent)[:2]
-    reverse = run_in_batches(path, None, kr, samples_b.samples[:n], lams, eps, precision_a, precision_b,
-                             "reverse", n, on_spent)[:2]
-    cost["pilot"] += 2 * switching_evaluations_padded(path, n, len(lams) - 1, n)
+    forward = dyn.run(path, None, kf, dyn.samples_a.samples[:n], lams, eps, "forward", n, on_spent)
+    reverse = dyn.run(path, None, kr, dyn.samples_b.samples[:n], lams, eps, "reverse", n, on_spent)
+    cost["pilot"] += 2 * dyn.cost(path, n, len(lams) - 1, n)
     return key, forward, reverse
 
 
-def _schedule_pilot(path, key, samples_a, samples_b, precision_a, precision_b, cost, scales, trajectories=64,
-                    tries: int = 2, on_spent=None):
+def _schedule_pilot(path, dyn, key, cost, scales, trajectories=64, tries: int = 2, on_spent=None):
     """Pilot on the linear schedule; return (λ grid, normalised length profile) for an adaptive schedule."""
     lams0 = make_schedule("linear", PILOT_STEPS)
-    n = min(trajectories, len(samples_a.samples), len(samples_b.samples))
+    n = min(trajectories, len(dyn.samples_a.samples), len(dyn.samples_b.samples))
     variance = np.full(PILOT_STEPS, np.nan)
     # a moderate step first (the largest pilot step is the one most likely to blow up), then smaller
     for scale in ([s for s in scales if s <= 0.5] or list(scales))[:tries]:
-        key, (_, inc_f), (_, inc_r) = _pilot_both_ways(path, key, samples_a, samples_b, precision_a, precision_b,
-                                                       lams0, scale, n, cost, on_spent)
+        key, (_, inc_f), (_, inc_r) = _pilot_both_ways(path, dyn, key, lams0, scale, n, cost, on_spent)
         # trajectories whose every step is finite (one that crosses a forbidden region has ∞ − ∞ steps)
         ok_f, ok_r = np.isfinite(inc_f).all(axis=1), np.isfinite(inc_r).all(axis=1)
         if ok_f.sum() > 8 and ok_r.sum() > 8:
@@ -175,18 +188,16 @@ def _schedule_pilot(path, key, samples_a, samples_b, precision_a, precision_b, c
     return lams0, length_profile(lams0, variance)
 
 
-def step_scale_pilot(path, key, samples_a, samples_b, precision_a, precision_b, lams, scales, cost,
-                     trajectories: int = 64, on_spent=None) -> list[PilotPoint]:
+def step_scale_pilot(path, dyn, key, lams, scales, cost, trajectories: int = 64, on_spent=None) -> list[PilotPoint]:
     """Uncontrolled pilot switching on ``lams`` at each step scale; the points the protocol planner fits.
 
     Adds the pilot's evaluations to ``cost["pilot"]``.
     """
-    n = min(trajectories, len(samples_a.samples), len(samples_b.samples))
+    n = min(trajectories, len(dyn.samples_a.samples), len(dyn.samples_b.samples))
     steps = len(lams) - 1
     points = []
     for scale in scales:
-        key, (wf, _), (wr, _) = _pilot_both_ways(path, key, samples_a, samples_b, precision_a, precision_b,
-                                                 lams, scale, n, cost, on_spent)
+        key, (wf, _), (wr, _) = _pilot_both_ways(path, dyn, key, lams, scale, n, cost, on_spent)
         bad_f, bad_r = mark_diverged(wf), mark_diverged(wr)
         ok_f, ok_r = wf[~bad_f], wr[~bad_r]
         # medians, not means: insertion-type switching has rare overlap works of 1e3–1e30 kT that sit far
@@ -221,27 +232,25 @@ def _sample_ends(keys, path, x_a, x_b, starts, opts: Options, plan: SwitchingBud
     return sampled
 
 
-def _pilot_and_plan(key, path, sampled, precision, opts: Options, budget: int | None, plan: SwitchingBudget,
-                    ledger: Ledger):
+def _pilot_and_plan(key, path, dyn, opts: Options, budget: int | None, plan: SwitchingBudget, ledger: Ledger):
     """Pilot runs, then K, step scale and trajectories; returns ``(plan, lams, step_sizes, points)``."""
     t0 = time.perf_counter()
-    samples_a, samples_b = sampled["a"], sampled["b"]
+    samples_a, samples_b = dyn.samples_a, dyn.samples_b
     ledger.cost["pilot"] = 0
     points: list[PilotPoint] = []
     schedule_for = (lambda k: make_schedule(opts.schedule, k))
     k_shape, k_pilot = jax.random.split(key)
     if isinstance(opts.schedule, str) and opts.schedule == "adaptive":
-        profile_lams, profile = _schedule_pilot(path, k_shape, samples_a, samples_b, *precision, ledger.cost,
+        profile_lams, profile = _schedule_pilot(path, dyn, k_shape, ledger.cost,
                                                 plan.pilot_scales or (opts.step_scale or 0.4,),
                                                 plan.pilot_trajectories or 64, on_spent=ledger.spend)
         schedule_for = (lambda k: schedule_from_profile(profile_lams, profile, k))
     if plan.pilot_scales:
-        points.extend(step_scale_pilot(path, k_pilot, samples_a, samples_b, *precision,
-                                       schedule_for(PILOT_STEPS), plan.pilot_scales, ledger.cost,
+        points.extend(step_scale_pilot(path, dyn, k_pilot, schedule_for(PILOT_STEPS), plan.pilot_scales, ledger.cost,
                                        plan.pilot_trajectories, on_spent=ledger.spend))
     remaining = (budget - ledger.spent) if budget is not None else 10**15
     available = min(len(samples_a.samples), len(samples_b.samples))
-    per_point = path.evaluations_per_point(1)
+    per_point = dyn.per_point(path)
     protocol = plan_protocol(points, remaining=remaining, per_point=per_point, available=available,
                              steps=opts.switching_steps, trajectories=opts.trajectories, scale=opts.step_scale,
                              batch=SWITCH_BATCH)
@@ -249,7 +258,7 @@ def _pilot_and_plan(key, path, sampled, precision, opts: Options, budget: int | 
         ledger.warnings.append("every pilot switching run had diverging trajectories, even at 1/16 of the sampler's "
                                "step; the energy may be too steep for Langevin switching.")
     lams = schedule_for(protocol.steps) if not isinstance(opts.schedule, np.ndarray) else np.asarray(opts.schedule)
-    step_sizes = _switching_step_sizes(lams, samples_a, samples_b, protocol.scale)
+    step_sizes = dyn.step_sizes(lams, protocol.scale)
     ledger.timings["pilot"] = time.perf_counter() - t0
     return protocol, lams, step_sizes, points
 
@@ -283,7 +292,7 @@ def _prepare_control(opts, key, path, samples_a, samples_b, lams, step_sizes, pr
 
 
 def _control_stage(key, path, sampled, precision, opts: Options, lams, step_sizes, budget, plan: SwitchingBudget,
-                   kT: float, x_a, ledger: Ledger):
+                   kT: float, x_a, ledger: Ledger, dyn=None):
     """Train or reuse a control within what the budget leaves after a minimal production run.
 
     Returns ``(drift, lams, step_sizes, report)``; ``drift`` is ``None`` without a control.
@@ -296,6 +305,8 @@ def _control_stage(key, path, sampled, precision, opts: Options, lams, step_size
         # measured (benchmarks/bench_pair_control_lj.py): on LJ decoupling the pair-force control cuts the
         # insertion work spread at equal steps but never repaid its training at equal budget
         return None, lams, step_sizes, {"decision": PAIR_AUTO_NOTE, "training_evaluations": 0, "kept": False}
+    if isinstance(dyn, KineticSwitching):
+        return None, lams, step_sizes, {"decision": KINETIC_AUTO_NOTE, "training_evaluations": 0, "kept": False}
     t0 = time.perf_counter()
     remaining = (budget - ledger.spent) if budget is not None else 10**12
     # training may use at most half of what it is given: keep a minimal production run out of its reach
@@ -326,14 +337,14 @@ def _production_size(protocol_trajectories: int, opts: Options, budget, steps: i
     return int(min(count, available))
 
 
-def _switch_stage(keys, path, drift, sampled, precision, lams, step_sizes, trajectories: int, ledger: Ledger):
+def _switch_stage(keys, path, dyn, drift, lams, step_sizes, trajectories: int, ledger: Ledger):
     t0 = time.perf_counter()
     steps = len(lams) - 1
-    forward, inc_forward, _ = run_in_batches(path, drift, keys[0], sampled["a"].samples[:trajectories], lams,
-                                             step_sizes, *precision, "forward", SWITCH_BATCH, ledger.spend)
-    reverse, _, _ = run_in_batches(path, drift, keys[1], sampled["b"].samples[:trajectories], lams,
-                                   step_sizes, *precision, "reverse", SWITCH_BATCH, ledger.spend)
-    ledger.cost["switching"] = 2 * switching_evaluations_padded(path, trajectories, steps, SWITCH_BATCH)
+    forward, inc_forward = dyn.run(path, drift, keys[0], dyn.samples_a.samples[:trajectories], lams, step_sizes,
+                                   "forward", SWITCH_BATCH, ledger.spend)
+    reverse, _ = dyn.run(path, drift, keys[1], dyn.samples_b.samples[:trajectories], lams, step_sizes,
+                         "reverse", SWITCH_BATCH, ledger.spend)
+    ledger.cost["switching"] = 2 * dyn.cost(path, trajectories, steps, SWITCH_BATCH)
     ledger.timings["switching"] = time.perf_counter() - t0
     return forward, reverse, inc_forward
 
@@ -403,7 +414,7 @@ def _report(path, opts: Options, kT, seed, budget, plan: SwitchingBudget, sample
         "diverged_forward": int(mark_diverged(work_forward).sum()),
         "diverged_reverse": int(mark_diverged(work_reverse).sum()),
         "switching_step_size_a": float(step_sizes[0]), "switching_step_size_b": float(step_sizes[-1]),
-        **weight_info,
+        **weight_info, **ledger.notes,
     }
     head = estimates[headline]
     extras = {"lambdas": lams, "work_per_step_forward": work_per_step,
@@ -433,26 +444,42 @@ def plan_switching(path, opts: Options) -> tuple[int | None, SwitchingBudget]:
 
 def run_switching(path, x_a, x_b, kT: float, seed: int, starts, opts: Options, budget: int | None,
                      plan: SwitchingBudget, t_start: float) -> Result:
-    per_point = path.evaluations_per_point(1)
     samples_wanted = opts.trajectories or int(np.clip((budget or DEFAULT_BUDGET) // 400, 64, 2048))
     k_sample_a, k_sample_b, k_pilot, k_forward, k_reverse, k_control = jax.random.split(jax.random.key(seed), 6)
     ledger = Ledger()
     meter = EvaluationMeter(budget, "ΔF by switching", enabled=opts.progress)
     ledger.meter = meter
     meter.stage("sampling the end states")
+    if budget is not None and _zero_step_allowed(path, opts):
+        # insertion needs burn-in most (a fluid from its start file); if it does not suffice, the pilot and
+        # switching still get what the other stages leave (the budget plan's minimum is kept)
+        plan = dataclasses.replace(plan, sampling_cap=max(plan.sampling_cap, int(
+            min(insertion.SAMPLING_SHARE * budget, (budget - plan.pilot_cap - plan.minimum_switching) / 2))))
     sampled = _sample_ends((k_sample_a, k_sample_b), path, x_a, x_b, starts, opts, plan, samples_wanted, ledger)
     precision = (jnp.asarray(1.0 / sampled["a"].preconditioner), jnp.asarray(1.0 / sampled["b"].preconditioner))
+    if _zero_step_allowed(path, opts):
+        meter.stage("insertion at the decoupled end")
+        zero = _zero_step_stage(jax.random.fold_in(k_pilot, 1), path, (x_a, x_b), sampled, opts, budget, seed, ledger)
+        if zero is not None:
+            meter.close()
+            ledger.timings["total"] = time.perf_counter() - t_start
+            return _zero_step_report(path, opts, kT, seed, budget, plan, zero, ledger)
     meter.stage("pilot switching")
-    protocol, lams, step_sizes, points = _pilot_and_plan(k_pilot, path, sampled, precision, opts, budget, plan, ledger)
+    dyn = choose_dynamics(path, sampled, precision, opts)
+    ledger.notes["switching_dynamics"] = dyn.name
+    protocol, lams, step_sizes, points = _pilot_and_plan(k_pilot, path, dyn, opts, budget, plan, ledger)
     meter.stage("control")
     drift, lams, step_sizes, control_report = _control_stage(k_control, path, sampled, precision, opts, lams,
-                                                             step_sizes, budget, plan, kT, x_a, ledger)
+                                                             step_sizes, budget, plan, kT, x_a, ledger, dyn)
     available = min(len(sampled["a"].samples), len(sampled["b"].samples))
-    trajectories = _production_size(protocol.trajectories, opts, budget, len(lams) - 1, per_point, available, ledger)
+    trajectories = _production_size(protocol.trajectories, opts, budget, len(lams) - 1, dyn.per_point(path),
+                                    available, ledger)
     _check_enough(trajectories, opts, ledger)
     meter.stage(f"switching {trajectories} trajectories × {len(lams) - 1} steps, both ways")
-    forward, reverse, inc_forward = _switch_stage((k_forward, k_reverse), path, drift, sampled, precision, lams,
-                                                  step_sizes, trajectories, ledger)
+    forward, reverse, inc_forward = _switch_stage((k_forward, k_reverse), path, dyn, drift, lams, step_sizes,
+                                                  trajectories, ledger)
+    if getattr(dyn, "extra_evaluations", 0):
+        ledger.cost["list_regrowth"] = int(dyn.extra_evaluations)
     meter.stage("estimators")
     found = _estimate_stage(forward, reverse, sampled, seed, ledger)
     meter.close()
@@ -474,3 +501,92 @@ def _check_enough(trajectories: int, opts: Options, ledger: Ledger) -> None:
                                f"{MIN_TRAJECTORIES}): the error bar is unreliable. Raise the budget.")
 
 
+
+
+# ------------------------------------------------------------------ zero switching steps (insertion)
+
+def _zero_step_allowed(path, opts: Options) -> bool:
+    """K = 0 is tried when asked for (``switching_steps=0``) or, with the protocol left to the tool,
+    when the decoupled end lets the group be placed anew (:func:`insertion.can_redraw`)."""
+    if opts.switching_steps == 0:
+        return True
+    free = (opts.switching_steps is None and opts.trajectories is None and opts.step_scale is None
+            and opts.control in ("auto", "none") and isinstance(opts.schedule, str))
+    return free and insertion.can_redraw(path)
+
+
+def _zero_step_stage(key, path, x_ab, sampled, opts: Options, budget, seed: int, ledger: Ledger):
+    """Check insertion on the first samples; when it suffices, spend the rest on more samples and
+    placements. Returns ``(samples, w_F, w_R, placements per B sample, reason, check)`` or ``None``
+    (switching then takes over; the check's cost stays booked)."""
+    t0 = time.perf_counter()
+    k_check, k_more_a, k_more_b, k_final = jax.random.split(key, 4)
+    forced = opts.switching_steps == 0
+    first = {end: dataclasses.replace(s, samples=insertion.whole_chains(s.samples, s.chains - s.stuck_chains))
+             for end, s in sampled.items()}
+    ledger.cost["insertion"] = 0
+    if not forced:
+        wf, wr, spent = insertion.zero_step_works(path, k_check, first["a"].samples, first["b"].samples,
+                                                  insertion.REDRAWS[0])
+        ledger.cost["insertion"] += spent
+        ledger.spend(spent)
+        estimates, overlap = run_estimators(wf, wr, seed)
+        ok, why = insertion.zero_step_suffices(estimates, overlap)
+        check = {"redraws": insertion.REDRAWS[0], "overlap": overlap, "used": ok, "reason": why,
+                 "evaluations": spent}
+        if not ok:
+            ledger.timings["insertion_check"] = time.perf_counter() - t0
+            ledger.notes["insertion"] = check
+            return None
+    else:
+        check = {"used": True, "reason": "switching_steps=0 was asked for"}
+    final = _placements_budget(path, first, budget, ledger)
+    if final["extend"] > 0:
+        first = insertion.extend_ends((k_more_a, k_more_b), path, first, final["extend"], ledger)
+    first, redraws = _final_placements(path, first, budget, ledger)
+    wf, wr, spent = insertion.zero_step_works(path, k_final, first["a"].samples, first["b"].samples, redraws)
+    ledger.cost["insertion"] += spent
+    ledger.spend(spent)
+    ledger.timings["insertion"] = time.perf_counter() - t0
+    return first, wf, wr, redraws, check
+
+
+def _placements_budget(path, sampled, budget, ledger: Ledger) -> dict:
+    """How much of what is left goes to more sampling (the rest pays for the placements)."""
+    if budget is None:
+        return {"extend": 0}
+    left = budget - ledger.spent
+    return {"extend": int(max(0, left) / (1.0 + insertion.REDRAW_SHARE))}
+
+
+def _final_placements(path, sampled, budget, ledger: Ledger) -> tuple[dict, int]:
+    """The samples the budget pays placements for (whole chains) and the placements per B sample."""
+    s_a, s_b = sampled["a"], sampled["b"]
+    per_sample = insertion.per_sample_cost(s_b) * path.end_evaluations()
+    if budget is None:
+        return sampled, insertion.redraw_count(path, per_sample)
+    cost = float(path.energy_change_cost())
+    left = budget - ledger.spent - 1
+    n_a = insertion.affordable_samples(path, 0.5 * left, len(s_a.samples), s_a.chains - s_a.stuck_chains)
+    left -= math.ceil(cost * n_a)
+    redraws = insertion.redraw_count(path, per_sample, available=left, samples=len(s_b.samples))
+    n_b = len(s_b.samples)
+    if redraws < 1:
+        redraws, n_b = 1, insertion.affordable_samples(path, left, n_b, s_b.chains - s_b.stuck_chains)
+    trimmed = {"a": dataclasses.replace(s_a, samples=s_a.samples[:n_a]),
+               "b": dataclasses.replace(s_b, samples=s_b.samples[:n_b])}
+    return trimmed, redraws
+
+
+def _zero_step_report(path, opts: Options, kT, seed, budget, plan: SwitchingBudget, zero, ledger: Ledger) -> Result:
+    sampled, wf, wr, redraws, check = zero
+    found = _estimate_stage(wf, wr, sampled, seed, ledger)
+    what = ("test-particle insertion" if insertion.can_redraw(path) else "zero-step exchange between the end states")
+    protocol = Plan(0, 0.0, int(wf.size), math.nan, math.nan,
+                    f"zero switching steps ({what}, {redraws} placements per B sample): {check['reason']}")
+    result = _report(path, opts, kT, seed, budget, plan, sampled, protocol, [], np.array([0.0, 1.0]),
+                     np.array([0.0]), (wf, wr), wf[:, None], None, *found, ledger)
+    result.settings.update(switching_steps=0, placements_per_sample=int(redraws), trajectories=int(wf.size),
+                           reverse_works=int(wr.size))
+    result.diagnostics["insertion"] = {**check, "placements_per_sample": int(redraws)}
+    return result
