@@ -46,7 +46,8 @@ def _parser() -> argparse.ArgumentParser:
     run.add_argument("--json", metavar="PATH", help="also write the full result as JSON to PATH")
     run.add_argument("--seed", type=int, help="random seed (default: the file's, else 0)")
     run.add_argument("--budget", type=budget_number, help="total energy evaluations to spend (e.g. 1e6)")
-    run.add_argument("--steps", type=int, dest="switching_steps", help="switching steps per trajectory")
+    run.add_argument("--steps", type=int, dest="switching_steps",
+                     help="switching steps per trajectory (0: insertion/deletion only, no switching)")
     run.add_argument("--trajectories", type=int, help="trajectories per direction")
     run.add_argument("--schedule", help="λ schedule: adaptive, linear, cosine or power")
     run.add_argument("--method", choices=["switching", "windows"], help="route: switching (default) or windows")

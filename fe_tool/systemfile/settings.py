@@ -14,7 +14,7 @@ from ..filesafety import open_regular_file, resolve_inside
 from .reader import (SystemFileError, check_keys, fail, finite, number, numeric_array, text, whole_number)
 
 # the type each estimate() option takes in a file (whole numbers with their minimum)
-WHOLE_NUMBER_SETTINGS = {"budget": 1, "switching_steps": 1, "trajectories": 2, "chains": 4, "seed": 0,
+WHOLE_NUMBER_SETTINGS = {"budget": 1, "switching_steps": 0, "trajectories": 2, "chains": 4, "seed": 0,
                          "exchange_every": 1, "samples_per_window": 16}
 TEXT_SETTINGS = ("method", "spacing", "units", "window_starts", "sampler")
 SWITCH_SETTINGS = ("exchange", "precondition", "progress")
