@@ -251,7 +251,9 @@ class SoftCoreDecouplingPath(ParameterInterpolationPath):
                 import numpy as np
                 found = count_pairs_within(np.asarray(reference_positions), model.box, term.cutoff,
                                            np.asarray(term.exclusions))
-                neighbour_capacity = int(1.5 * found) + 64
+                # a start (a lattice, a dilute gas) may have far fewer pairs than the fluid it melts into:
+                # never size below the pairs of a uniform fluid at this density (plus 50 % for fluctuations)
+                neighbour_capacity = int(1.5 * max(found, _uniform_pairs(term.n_particles, model.box, term.cutoff))) + 64
             builder = neighbour_list_builder(term.n_particles, model.box, term.cutoff, 0.0, int(neighbour_capacity),
                                              exclusions=term.exclusions, dimension=int(model.box.shape[0]))
         self.neighbour_builder = builder
@@ -458,6 +460,17 @@ def _redraw_obstacle(term: Nonbonded, box, shared, extra) -> str:
         if reason:
             return reason
     return ""
+
+
+def _uniform_pairs(n: int, box, radius: float) -> float:
+    """Pairs within ``radius`` of n particles spread uniformly in ``box`` (minimum image, radius < half the box)."""
+    import math
+
+    import numpy as np
+    edges = np.asarray(box, dtype=float)
+    dimension = edges.size
+    ball = math.pi * radius**2 if dimension == 2 else 4.0 / 3.0 * math.pi * radius**3
+    return 0.5 * n * (n - 1) * min(1.0, ball / float(np.prod(edges)))
 
 
 def _group_is_charged(term: Nonbonded) -> bool:

@@ -118,7 +118,7 @@ def test_decoupling_gives_the_kolafa_nezbeda_excess_chemical_potential():
     temperature = system.kT
     density = system.particles["count"] / float(np.prod(system.particles["box"]))
     assert (temperature, system.particles["cutoff"]) == (2.0, 2.5) and density == pytest.approx(0.3, rel=1e-12)
-    assert system.settings == {"chains": 16, "budget": 150_000}  # the test runs the file's own settings
+    assert system.settings == {"chains": 8, "budget": 150_000}  # the test runs the file's own settings
     # the file's reference is ΔF = −μ_ex from the Kolafa–Nezbeda EOS
     reference_kn = beta_excess_chemical_potential(kn_residual_free_energy, temperature, density)
     assert system.reference["delta_f"] == pytest.approx(-reference_kn * temperature, abs=1e-4)

@@ -573,6 +573,12 @@ def _final_placements(path, sampled, budget, ledger: Ledger) -> tuple[dict, int]
     n_b = len(s_b.samples)
     if redraws < 1:
         redraws, n_b = 1, insertion.affordable_samples(path, left, n_b, s_b.chains - s_b.stuck_chains)
+    if n_a < 1 or n_b < 1:
+        # nothing left to pay placements with (sampling overran its share, e.g. neighbour lists regrown):
+        # one deletion and one placement per chain still give an estimate, at a cost below a few evaluations
+        n_a, n_b, redraws = max(n_a, min(len(s_a.samples), s_a.chains)), max(n_b, min(len(s_b.samples), s_b.chains)), 1
+        ledger.warnings.append("the budget was spent before the placements: only one deletion and one placement "
+                               "per sampling chain were scored. Raise the budget.")
     trimmed = {"a": dataclasses.replace(s_a, samples=s_a.samples[:n_a]),
                "b": dataclasses.replace(s_b, samples=s_b.samples[:n_b])}
     return trimmed, redraws
