@@ -153,7 +153,12 @@ class ParameterInterpolationPath(Path):
         for term in self.shared:  # a handful of terms, unrolled at trace time
             total = total + (term(x, box=self.box, neighbours=neighbours) if neighbours is not None
                              else term(x, box=self.box))
-        for a, b in zip(self.changed_a, self.changed_b):
+        return total + self._extra_energy(x, lam)
+
+    def _extra_energy(self, x: Configuration, lam: Array) -> Array:
+        """The interpolated extra terms (changed and one-ended) at one λ, energy units."""
+        total = jnp.zeros((), dtype=jnp.result_type(float))
+        for a, b in zip(self.changed_a, self.changed_b):  # a handful of terms, unrolled at trace time
             total = total + interpolate_term(a, b, lam)(x, box=self.box)
         for term in self.only_a:
             total = total + (1.0 - lam) * term(x, box=self.box)
@@ -279,17 +284,6 @@ class SoftCoreDecouplingPath(ParameterInterpolationPath):
         return (self._terms_energy(x, lam) + nonbonded) / self.kT
 
     # ------------------------------------------------------------ the λ-dependent part alone
-
-    def _extra_energy(self, x: Configuration, lam: Array) -> Array:
-        """The interpolated extra terms (changed and one-ended) at one λ, energy units."""
-        total = jnp.zeros((), dtype=jnp.result_type(float))
-        for a, b in zip(self.changed_a, self.changed_b):  # a handful of terms, unrolled at trace time
-            total = total + interpolate_term(a, b, lam)(x, box=self.box)
-        for term in self.only_a:
-            total = total + (1.0 - lam) * term(x, box=self.box)
-        for term in self.only_b:
-            total = total + lam * term(x, box=self.box)
-        return total
 
     def changing_energy(self, x: Configuration, lams: Array) -> Array:
         """The λ-dependent part of u(x, λ) (reduced) at λ = ``lams`` (a scalar or a vector (c,)).

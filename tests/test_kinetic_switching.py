@@ -20,6 +20,7 @@ from fe_tool.alchemy import SoftCoreDecouplingPath
 from fe_tool.energy import assemble, lennard_jones_parameters, nonbonded_term
 from fe_tool.kinetic_switching import kinetic_switching_evaluations, run_kinetic_in_batches, switch_kinetic
 from fe_tool.path import LinearPath, Path
+from test_switching import DraggedTrap  # the same dragged trap as the overdamped checks
 
 K_A, C_A = np.array([1.0, 1.0]), np.array([0.0, 0.0])
 K_B, C_B = np.array([4.0, 2.0]), np.array([0.8, -0.5])
@@ -103,21 +104,6 @@ def test_crooks_ratio_has_unit_slope_and_offset_minus_delta_f(pair_works):
     errors = np.sqrt(np.diag(np.linalg.inv(design.T @ design)))
     assert abs(slope - 1.0) < 4 * errors[0], (slope, errors[0])
     assert abs(offset + DELTA_F) < 4 * errors[1], (offset, errors[1])
-
-
-class DraggedTrap(Path):
-    """u(x, λ) = (k/2)(x − λ L)²: a harmonic trap moved by L (ΔF = 0)."""
-
-    stiffness: float
-    distance: float
-
-    def __init__(self, stiffness, distance):
-        self.kT = 1.0
-        self.stiffness = stiffness
-        self.distance = distance
-
-    def energy(self, x, lam):
-        return 0.5 * self.stiffness * jnp.sum((x - lam * self.distance) ** 2)
 
 
 def _exact_mean_work(k, distance, inverse_mass, h, damping, levels):

@@ -459,7 +459,7 @@ def run_switching(path, x_a, x_b, kT: float, seed: int, starts, opts: Options, b
     precision = (jnp.asarray(1.0 / sampled["a"].preconditioner), jnp.asarray(1.0 / sampled["b"].preconditioner))
     if _zero_step_allowed(path, opts):
         meter.stage("insertion at the decoupled end")
-        zero = _zero_step_stage(jax.random.fold_in(k_pilot, 1), path, (x_a, x_b), sampled, opts, budget, seed, ledger)
+        zero = _zero_step_stage(jax.random.fold_in(k_pilot, 1), path, sampled, opts, budget, seed, ledger)
         if zero is not None:
             meter.close()
             ledger.timings["total"] = time.perf_counter() - t_start
@@ -515,7 +515,7 @@ def _zero_step_allowed(path, opts: Options) -> bool:
     return free and insertion.can_redraw(path)
 
 
-def _zero_step_stage(key, path, x_ab, sampled, opts: Options, budget, seed: int, ledger: Ledger):
+def _zero_step_stage(key, path, sampled, opts: Options, budget, seed: int, ledger: Ledger):
     """Check insertion on the first samples; when it suffices, spend the rest on more samples and
     placements. Returns ``(samples, w_F, w_R, placements per B sample, reason, check)`` or ``None``
     (switching then takes over; the check's cost stays booked)."""
@@ -540,9 +540,9 @@ def _zero_step_stage(key, path, x_ab, sampled, opts: Options, budget, seed: int,
             return None
     else:
         check = {"used": True, "reason": "switching_steps=0 was asked for"}
-    final = _placements_budget(path, first, budget, ledger)
-    if final["extend"] > 0:
-        first = insertion.extend_ends((k_more_a, k_more_b), path, first, final["extend"], ledger)
+    extend = _sampling_extension(budget, ledger)
+    if extend > 0:
+        first = insertion.extend_ends((k_more_a, k_more_b), path, first, extend, ledger)
     first, redraws = _final_placements(path, first, budget, ledger)
     wf, wr, spent = insertion.zero_step_works(path, k_final, first["a"].samples, first["b"].samples, redraws)
     ledger.cost["insertion"] += spent
@@ -551,12 +551,11 @@ def _zero_step_stage(key, path, x_ab, sampled, opts: Options, budget, seed: int,
     return first, wf, wr, redraws, check
 
 
-def _placements_budget(path, sampled, budget, ledger: Ledger) -> dict:
+def _sampling_extension(budget, ledger: Ledger) -> int:
     """How much of what is left goes to more sampling (the rest pays for the placements)."""
     if budget is None:
-        return {"extend": 0}
-    left = budget - ledger.spent
-    return {"extend": int(max(0, left) / (1.0 + insertion.REDRAW_SHARE))}
+        return 0
+    return int(max(0, budget - ledger.spent) / (1.0 + insertion.REDRAW_SHARE))
 
 
 def _final_placements(path, sampled, budget, ledger: Ledger) -> tuple[dict, int]:
